@@ -1,0 +1,20 @@
+//! Compiles proto/ with a pure-Rust protobuf compiler (no system protoc needed) and writes the
+//! file descriptor set that server reflection serves.
+
+use std::path::PathBuf;
+
+fn main() -> Result<(), Box<dyn std::error::Error>> {
+    let proto = "proto/candor/v1/calibrator.proto";
+    println!("cargo:rerun-if-changed={proto}");
+    let fds = protox::compile([proto], ["proto"])?;
+    let out = PathBuf::from(std::env::var("OUT_DIR")?);
+    std::fs::write(
+        out.join("candor_descriptor.bin"),
+        prost::Message::encode_to_vec(&fds),
+    )?;
+    tonic_prost_build::configure()
+        .build_client(true)
+        .build_server(true)
+        .compile_fds(fds)?;
+    Ok(())
+}

@@ -1,0 +1,55 @@
+//! The `candor` command line. Exit codes: 0 success, 1 a check failed, 2 an error (bad usage,
+//! unreadable input, a server that could not start).
+
+mod check;
+mod demo;
+mod serve;
+
+use clap::{Parser, Subcommand};
+use std::process::ExitCode;
+
+/// Exit code: a check found problems.
+pub const EXIT_CHECK_FAILED: u8 = 1;
+/// Exit code: an error.
+pub const EXIT_ERROR: u8 = 2;
+
+/// candor recalibrates classifier confidences and decides accept-or-defer.
+#[derive(Debug, Parser)]
+#[command(
+    name = "candor",
+    version,
+    about,
+    after_help = "Exit codes: 0 success, 1 a check found problems, 2 error."
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Run the gRPC sidecar: raw logits in, calibrated probabilities and accept/defer out.
+    Serve(serve::ServeArgs),
+    /// Validate map files with the same validator the sidecar uses; exit 1 if any has problems.
+    Check(check::CheckArgs),
+    /// Run the main job end to end on demo data: start a sidecar, stream letters through it,
+    /// compare decisions before and after recalibration.
+    Demo(demo::DemoArgs),
+}
+
+/// Parses the process arguments and runs the command.
+pub fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Serve(args) => serve::run(args),
+        Command::Check(args) => check::run(&args),
+        Command::Demo(args) => demo::run(&args),
+    };
+    match result {
+        Ok(code) => code,
+        Err(e) => {
+            eprintln!("candor: error: {e:#}");
+            ExitCode::from(EXIT_ERROR)
+        }
+    }
+}

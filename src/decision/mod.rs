@@ -1,0 +1,6 @@
+//! Decisions: the serving-time accept-or-defer rule and the evidence behind a threshold.
+
+pub mod certify;
+pub mod policy;
+
+pub use policy::{Decision, DecisionPolicy, Evidence};

@@ -1,0 +1,34 @@
+//! candor: recalibrate a classifier's confidences and decide accept-or-defer.
+//!
+//! Module map:
+//! - [`numeric`] — lse, softmax, sigmoid and friends (pure).
+//! - [`method`] — each recalibration method's validated parameters and how it is applied (pure).
+//! - [`fit`] — fitting maps from held-out logits and labels (pure).
+//! - [`decision`] — certified acceptance thresholds, the accept-or-defer rule and the evidence
+//!   behind a threshold (pure).
+//! - [`stats`] — lnΓ, incomplete beta, binomial tails, Clopper–Pearson bounds (pure).
+//! - [`eval`] — calibration quality: ECE and friends, NLL, Brier, AURC, bootstrap, drift (pure).
+//! - [`dataset`] — reading labelled logits from .npy, CSV and JSON Lines; writing probabilities.
+//! - [`mapfile`] — the map file: reading with every problem named, writing sealed with a digest.
+//! - [`registry`] — the live maps as immutable snapshots swapped whole, plus decision counters.
+//! - [`service`] — the gRPC handlers and the one mapping of errors to status codes.
+//! - [`server`] — running the sidecar: data plane, health, reflection, graceful shutdown.
+//! - [`proto`] — generated protobuf code.
+//! - [`demo`] — the demo scenario and its deterministic data generator.
+//! - [`cli`] — the `candor` command line.
+#![forbid(unsafe_code)]
+
+pub mod cli;
+pub mod dataset;
+pub mod decision;
+pub mod demo;
+pub mod eval;
+pub mod fit;
+pub mod mapfile;
+pub mod method;
+pub mod numeric;
+pub mod proto;
+pub mod registry;
+pub mod server;
+pub mod service;
+pub mod stats;

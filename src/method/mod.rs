@@ -1,0 +1,156 @@
+//! Recalibration maps: the parameters of each method and how a map turns one row of logits into
+//! calibrated probabilities (METHODS.md section 2).
+//!
+//! Every method works in place on a [`Workspace`]: the row's logits are widened to f64 into
+//! `Workspace::z`, the method overwrites them with probabilities, and nothing is allocated once the
+//! workspace has grown to the largest K seen. Fitting lives in `crate::fit`; this module only holds
+//! what serving needs.
+
+mod affine;
+mod bbq;
+mod beta;
+mod histogram;
+mod isotonic;
+mod one_vs_rest;
+mod platt;
+mod problem;
+mod temperature;
+
+pub use affine::{Dirichlet, MatrixScaling, VectorScaling};
+pub use bbq::{Bbq, BbqModel, WEIGHT_SUM_TOLERANCE};
+pub use beta::BetaCalibration;
+pub use histogram::{bin_index, Histogram};
+pub use isotonic::Isotonic;
+pub use one_vs_rest::{BinaryMap, OneVsRest, ScoreKind};
+pub use platt::Platt;
+pub use problem::{Problem, Problems};
+pub use temperature::Temperature;
+
+use crate::numeric::{softmax_in_place, Logit};
+
+/// A recalibration method with validated parameters for a fixed number of classes.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Method {
+    /// Plain softmax of the logits: no recalibration (the uncalibrated baseline).
+    Identity,
+    /// softmax(z / T), METHODS.md 2.1.
+    Temperature(Temperature),
+    /// softmax(w ⊙ z + b), METHODS.md 2.2.
+    Vector(VectorScaling),
+    /// softmax(W z + b), METHODS.md 2.3.
+    Matrix(MatrixScaling),
+    /// softmax(W ln clamp(softmax(z)) + b), METHODS.md 2.4.
+    Dirichlet(Dirichlet),
+    /// Platt scaling on log-odds, one-vs-rest for K ≥ 3, METHODS.md 2.6 and 2.11.
+    Platt(OneVsRest<Platt>),
+    /// Histogram binning on probabilities, METHODS.md 2.7 and 2.11.
+    Histogram(OneVsRest<Histogram>),
+    /// Isotonic regression on probabilities, METHODS.md 2.8 and 2.11.
+    Isotonic(OneVsRest<Isotonic>),
+    /// Bayesian binning into quantiles, METHODS.md 2.9 and 2.11.
+    Bbq(OneVsRest<Bbq>),
+    /// Beta calibration on probabilities, METHODS.md 2.10 and 2.11.
+    Beta(OneVsRest<BetaCalibration>),
+}
+
+impl Method {
+    /// The method's name as written in a map file's `method.kind`.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            Method::Identity => "identity",
+            Method::Temperature(_) => "temperature",
+            Method::Vector(_) => "vector",
+            Method::Matrix(_) => "matrix",
+            Method::Dirichlet(_) => "dirichlet",
+            Method::Platt(_) => "platt",
+            Method::Histogram(_) => "histogram",
+            Method::Isotonic(_) => "isotonic",
+            Method::Bbq(_) => "bbq",
+            Method::Beta(_) => "beta",
+        }
+    }
+
+    /// Overwrites `z` (one row of K logits, finite or ±∞, never NaN) with calibrated
+    /// probabilities. `scratch` is grown as needed and holds no state between calls.
+    pub fn apply_in_place(&self, z: &mut [f64], scratch: &mut Vec<f64>) {
+        match self {
+            Method::Identity => {
+                softmax_in_place(z);
+            }
+            Method::Temperature(m) => m.apply_in_place(z),
+            Method::Vector(m) => m.apply_in_place(z),
+            Method::Matrix(m) => m.apply_in_place(z, scratch),
+            Method::Dirichlet(m) => m.apply_in_place(z, scratch),
+            Method::Platt(m) => m.apply_in_place(z, scratch),
+            Method::Histogram(m) => m.apply_in_place(z, scratch),
+            Method::Isotonic(m) => m.apply_in_place(z, scratch),
+            Method::Bbq(m) => m.apply_in_place(z, scratch),
+            Method::Beta(m) => m.apply_in_place(z, scratch),
+        }
+    }
+}
+
+/// How a request's numbers are read (METHODS.md 0.3).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum InputForm {
+    /// K logits, one per class.
+    Logits,
+    /// K = 2 only: one log-odds score f for class 1, read as the logit pair (0, f).
+    BinaryScore,
+}
+
+impl InputForm {
+    /// Number of values a request must carry for a map with `classes` classes.
+    pub fn input_len(self, classes: usize) -> usize {
+        match self {
+            InputForm::Logits => classes,
+            InputForm::BinaryScore => 1,
+        }
+    }
+
+    /// Name as written in a map file.
+    pub fn name(self) -> &'static str {
+        match self {
+            InputForm::Logits => "logits",
+            InputForm::BinaryScore => "binary_score",
+        }
+    }
+}
+
+/// Reusable buffers for applying maps without allocating per row.
+#[derive(Debug, Default, Clone)]
+pub struct Workspace {
+    z: Vec<f64>,
+    scratch: Vec<f64>,
+}
+
+impl Workspace {
+    /// An empty workspace; it grows to the largest K it is used with.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Calibrates one row: widens `input` to f64 in the given form, applies `method` and returns
+    /// the K calibrated probabilities. The caller has checked `input.len()` against the form and
+    /// rejected NaN.
+    pub fn apply<L: Logit>(
+        &mut self,
+        method: &Method,
+        form: InputForm,
+        classes: usize,
+        input: &[L],
+    ) -> &[f64] {
+        self.z.clear();
+        match form {
+            InputForm::Logits => self.z.extend(input.iter().map(|v| v.to_f64())),
+            InputForm::BinaryScore => {
+                debug_assert_eq!(classes, 2);
+                self.z.push(0.0);
+                self.z.push(input[0].to_f64());
+            }
+        }
+        debug_assert_eq!(self.z.len(), classes);
+        method.apply_in_place(&mut self.z, &mut self.scratch);
+        &self.z
+    }
+}

@@ -1,0 +1,120 @@
+//! Running the sidecar: the data-plane service, gRPC health checking and server reflection on one
+//! listener, with graceful shutdown.
+//!
+//! [`run`] takes an already-bound listener and a shutdown future, so tests bind port 0 and stop
+//! the server when they are done.
+
+use crate::proto::v1::calibrator_server::CalibratorServer;
+use crate::registry::Registry;
+use crate::service::CalibratorService;
+use std::future::Future;
+use std::sync::Arc;
+use std::time::Duration;
+use tokio::net::TcpListener;
+use tokio_stream::wrappers::TcpListenerStream;
+use tonic_health::ServingStatus;
+
+/// Name of the data-plane service in gRPC health checking.
+pub const SERVICE_NAME: &str = "candor.v1.Calibrator";
+
+/// Settings of a running server.
+#[derive(Debug, Clone)]
+pub struct ServeOptions {
+    /// How long in-flight requests may take to finish after shutdown begins.
+    pub grace_period: Duration,
+}
+
+impl Default for ServeOptions {
+    fn default() -> Self {
+        ServeOptions {
+            grace_period: Duration::from_secs(10),
+        }
+    }
+}
+
+/// Why the server stopped abnormally.
+#[derive(Debug, thiserror::Error)]
+pub enum ServeError {
+    /// The transport failed.
+    #[error("gRPC transport failed: {0}")]
+    Transport(#[from] tonic::transport::Error),
+    /// The reflection service could not be built from the descriptor set.
+    #[error("server reflection could not be set up: {0}")]
+    Reflection(#[from] tonic_reflection::server::Error),
+}
+
+/// Serves until `shutdown` completes, then marks health NOT_SERVING, stops accepting connections
+/// and waits up to the grace period for in-flight requests; streams still open after it are
+/// closed.
+///
+/// Health reports NOT_SERVING until the registry's readiness latch is released, SERVING after.
+///
+/// # Errors
+/// [`ServeError`] when the transport fails or reflection cannot be set up.
+pub async fn run(
+    listener: TcpListener,
+    registry: Arc<Registry>,
+    options: ServeOptions,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> Result<(), ServeError> {
+    let (reporter, health) = tonic_health::server::health_reporter();
+    for name in ["", SERVICE_NAME] {
+        reporter
+            .set_service_status(name, ServingStatus::NotServing)
+            .await;
+    }
+    let reflection = tonic_reflection::server::Builder::configure()
+        .register_encoded_file_descriptor_set(crate::proto::FILE_DESCRIPTOR_SET)
+        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+        .build_v1()?;
+
+    let mut ready = registry.readiness();
+    let ready_reporter = reporter.clone();
+    let readiness_task = tokio::spawn(async move {
+        if ready.wait_for(|r| *r).await.is_ok() {
+            for name in ["", SERVICE_NAME] {
+                ready_reporter
+                    .set_service_status(name, ServingStatus::Serving)
+                    .await;
+            }
+            tracing::info!("every map loaded: health is SERVING");
+        }
+    });
+
+    let (drain_tx, drain_rx) = tokio::sync::oneshot::channel::<()>();
+    let stop = async move {
+        shutdown.await;
+        readiness_task.abort();
+        for name in ["", SERVICE_NAME] {
+            reporter
+                .set_service_status(name, ServingStatus::NotServing)
+                .await;
+        }
+        tracing::info!("shutting down: health is NOT_SERVING, draining in-flight requests");
+        let _ = drain_tx.send(());
+    };
+
+    let server = tonic::transport::Server::builder()
+        .add_service(health)
+        .add_service(reflection)
+        .add_service(CalibratorServer::new(CalibratorService::new(registry)))
+        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
+    tokio::pin!(server);
+    let grace = options.grace_period;
+    tokio::select! {
+        r = &mut server => return r.map_err(ServeError::from),
+        _ = drain_rx => {}
+    }
+    match tokio::time::timeout(grace, &mut server).await {
+        Ok(r) => r.map_err(ServeError::from),
+        Err(_) => {
+            // Long-lived streams (health watches, CalibrateStream) may never end by themselves;
+            // the grace period is their notice, and stopping after it is the normal outcome.
+            tracing::warn!(
+                ?grace,
+                "grace period over with streams still open; closing them"
+            );
+            Ok(())
+        }
+    }
+}

@@ -1,0 +1,153 @@
+//! Answering one row: look up the map, check the logits, apply, decide, encode. This is the
+//! request hot path: no lock, no I/O, no logging above debug, and no allocation but the response's
+//! own vectors (the f64 workspace is per thread and reused).
+
+use crate::decision::Decision;
+use crate::method::Workspace;
+use crate::proto::v1::{CalibrateRequest, CalibrateResponse, Decision as PbDecision};
+use crate::registry::{LookupError, Snapshot};
+use std::cell::RefCell;
+
+thread_local! {
+    /// One workspace per worker thread: grown once to the largest K, then reused.
+    static WORKSPACE: RefCell<Workspace> = RefCell::new(Workspace::new());
+}
+
+/// Why one row could not be answered.
+#[derive(Debug, Clone, PartialEq)]
+pub enum RowError {
+    /// The map lookup failed.
+    Lookup(LookupError),
+    /// No logits at all.
+    EmptyLogits {
+        /// Values the map expects.
+        expected: usize,
+    },
+    /// The wrong number of logits.
+    LogitsLen {
+        /// Values the map expects.
+        expected: usize,
+        /// Values received.
+        got: usize,
+    },
+    /// A NaN or infinite logit.
+    NonFinite {
+        /// 0-based position.
+        index: usize,
+        /// The value.
+        value: f32,
+    },
+}
+
+impl std::fmt::Display for RowError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            RowError::Lookup(LookupError::NoMaps) => write!(f, "no map is loaded yet"),
+            RowError::Lookup(LookupError::UnknownModel { model, known }) => {
+                write!(
+                    f,
+                    "no map for model {model:?} (loaded: {})",
+                    known.join(", ")
+                )
+            }
+            RowError::Lookup(LookupError::ModelRequired { loaded }) => {
+                write!(f, "model is empty but {loaded} models are loaded; name one")
+            }
+            RowError::EmptyLogits { expected } => {
+                write!(f, "logits is empty; expected {expected} values")
+            }
+            RowError::LogitsLen { expected, got } => {
+                write!(f, "expected {expected} logits, got {got}")
+            }
+            RowError::NonFinite { index, value } => {
+                write!(f, "logits[{index}] is {value}; every logit must be finite")
+            }
+        }
+    }
+}
+
+/// Calibrates one request against `snapshot`, counting the decision.
+///
+/// # Errors
+/// [`RowError`] for an unknown model, missing maps or bad logits; nothing is counted then.
+pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateResponse, RowError> {
+    let active = snapshot.get(&req.model).map_err(RowError::Lookup)?;
+    let map = &active.map;
+    let expected = map.input_len();
+    if req.logits.is_empty() {
+        return Err(RowError::EmptyLogits { expected });
+    }
+    if req.logits.len() != expected {
+        return Err(RowError::LogitsLen {
+            expected,
+            got: req.logits.len(),
+        });
+    }
+    if let Some(index) = req.logits.iter().position(|v| !v.is_finite()) {
+        return Err(RowError::NonFinite {
+            index,
+            value: req.logits[index],
+        });
+    }
+    let k = map.classes();
+    let top_k = (req.top_k as usize).min(k);
+    let mut resp = WORKSPACE.with_borrow_mut(|ws| {
+        let q = ws.apply(map.method(), map.input(), k, &req.logits);
+        let predicted = crate::numeric::argmax(q);
+        let confidence = q[predicted];
+        let (probabilities, classes) = if top_k == 0 {
+            (q.iter().map(|&v| v as f32).collect(), Vec::new())
+        } else {
+            top_entries(q, top_k)
+        };
+        CalibrateResponse {
+            probabilities,
+            predicted_class: predicted as u32,
+            confidence: confidence as f32,
+            decision: match map.policy().decide(predicted, confidence) {
+                Decision::Accept => PbDecision::Accept as i32,
+                Decision::Defer => PbDecision::Defer as i32,
+            },
+            threshold: map
+                .policy()
+                .threshold_for(predicted)
+                .map_or(f32::INFINITY, |t| t as f32),
+            map_version: String::new(),
+            request_id: String::new(),
+            classes,
+        }
+    });
+    active
+        .counters
+        .record(resp.decision == PbDecision::Accept as i32);
+    resp.map_version = map.map_version().to_owned();
+    resp.request_id.clone_from(&req.request_id);
+    Ok(resp)
+}
+
+/// The `top_k` largest probabilities, largest first (ties: smaller class first), with classes.
+fn top_entries(q: &[f64], top_k: usize) -> (Vec<f32>, Vec<u32>) {
+    let mut idx: Vec<u32> = (0..q.len() as u32).collect();
+    let order = |a: &u32, b: &u32| q[*b as usize].total_cmp(&q[*a as usize]).then(a.cmp(b));
+    if top_k < idx.len() {
+        idx.select_nth_unstable_by(top_k - 1, order);
+        idx.truncate(top_k);
+    }
+    idx.sort_unstable_by(order);
+    let probs = idx.iter().map(|&i| q[i as usize] as f32).collect();
+    (probs, idx)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn top_entries_are_sorted_with_stable_ties() {
+        let (p, c) = top_entries(&[0.1, 0.3, 0.3, 0.05, 0.25], 3);
+        assert_eq!(c, [1, 2, 4]);
+        assert_eq!(p, [0.3f32, 0.3, 0.25]);
+        let (_, c) = top_entries(&[0.5, 0.5], 2);
+        assert_eq!(c, [0, 1]);
+    }
+}

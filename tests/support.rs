@@ -1,0 +1,119 @@
+//! Shared set-up: maps built in code and a sidecar on an ephemeral loopback port.
+
+use candor::decision::DecisionPolicy;
+use candor::mapfile::{CalibrationMap, MapParts};
+use candor::method::{InputForm, Isotonic, Method, OneVsRest, Temperature};
+use candor::proto::v1::calibrator_client::CalibratorClient;
+use candor::registry::Registry;
+use candor::server::{run, ServeOptions};
+use std::net::SocketAddr;
+use std::sync::Arc;
+use tokio::sync::oneshot;
+use tokio::task::JoinHandle;
+use tonic::transport::Channel;
+
+/// A map for `model` with `method`, K classes and a global threshold.
+pub fn map(
+    model: &str,
+    classes: usize,
+    input: InputForm,
+    method: Method,
+    threshold: f64,
+) -> CalibrationMap {
+    CalibrationMap::from_parts(MapParts {
+        model: model.into(),
+        map_version: format!("{model}-v1"),
+        classes,
+        class_names: None,
+        input,
+        method,
+        policy: DecisionPolicy::global(threshold),
+        provenance: serde_json::Map::new(),
+    })
+    .expect("test map is valid")
+}
+
+/// Temperature map, K = 3, T = 2, threshold 0.6.
+pub fn temperature_map() -> CalibrationMap {
+    let t = Temperature::try_new(2.0, "t").unwrap();
+    map("triage", 3, InputForm::Logits, Method::Temperature(t), 0.6)
+}
+
+/// Isotonic map on one binary score, threshold 0.8.
+pub fn binary_isotonic_map() -> CalibrationMap {
+    let iso = Isotonic::try_new(vec![0.1, 0.5, 0.9], vec![0.05, 0.5, 0.97], "m").unwrap();
+    map(
+        "spam",
+        2,
+        InputForm::BinaryScore,
+        Method::Isotonic(OneVsRest::try_new(2, vec![iso], "m").unwrap()),
+        0.8,
+    )
+}
+
+/// A sidecar running in this process.
+pub struct Sidecar {
+    pub addr: SocketAddr,
+    pub registry: Arc<Registry>,
+    stop: Option<oneshot::Sender<()>>,
+    handle: JoinHandle<Result<(), candor::server::ServeError>>,
+}
+
+impl Sidecar {
+    /// Starts a server on 127.0.0.1:0 with an empty, not-ready registry.
+    pub async fn start() -> Sidecar {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let registry = Registry::new();
+        let (tx, rx) = oneshot::channel::<()>();
+        let handle = tokio::spawn(run(
+            listener,
+            registry.clone(),
+            ServeOptions::default(),
+            async {
+                let _ = rx.await;
+            },
+        ));
+        Sidecar {
+            addr,
+            registry,
+            stop: Some(tx),
+            handle,
+        }
+    }
+
+    /// Starts a server and publishes `maps` as ready.
+    pub async fn with_maps(maps: Vec<CalibrationMap>) -> Sidecar {
+        let s = Self::start().await;
+        s.registry.publish(maps);
+        s.registry.mark_ready();
+        s
+    }
+
+    /// A connected channel.
+    pub async fn channel(&self) -> Channel {
+        Channel::from_shared(format!("http://{}", self.addr))
+            .unwrap()
+            .connect()
+            .await
+            .unwrap()
+    }
+
+    /// A connected data-plane client.
+    pub async fn client(&self) -> CalibratorClient<Channel> {
+        CalibratorClient::new(self.channel().await)
+    }
+
+    /// Signals shutdown without waiting.
+    pub fn begin_stop(&mut self) {
+        if let Some(tx) = self.stop.take() {
+            let _ = tx.send(());
+        }
+    }
+
+    /// Signals shutdown and waits for the server to finish cleanly.
+    pub async fn stop(mut self) {
+        self.begin_stop();
+        self.handle.await.unwrap().unwrap();
+    }
+}

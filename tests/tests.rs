@@ -1,0 +1,5 @@
+//! Integration tests: one binary, one module per topic.
+
+mod cli;
+mod serve;
+mod support;
