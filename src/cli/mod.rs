@@ -3,6 +3,7 @@
 
 mod check;
 mod demo;
+pub mod inputs;
 mod serve;
 
 use clap::{Parser, Subcommand};
