@@ -29,14 +29,25 @@ pub fn max(z: &[f64]) -> f64 {
     z.iter().copied().fold(f64::NEG_INFINITY, f64::max)
 }
 
-/// log-sum-exp: `m + ln Σ exp(z_k − m)` with `m = max z`; −∞ for an empty or all −∞ slice.
+/// log-sum-exp: `m + ln(1 + Σ_{j≠j*} exp(z_j − m))` with `m = z_{j*} = max z`; −∞ for an empty
+/// or all −∞ slice.
+///
+/// Summing every term but the maximum's and using `ln_1p` keeps ln p_k = z_k − lse(z) accurate
+/// when one class holds nearly all the mass (as scipy.special.logsumexp does).
 #[inline]
 pub fn lse(z: &[f64]) -> f64 {
     let m = max(z);
     if !m.is_finite() {
         return m;
     }
-    m + z.iter().map(|&v| (v - m).exp()).sum::<f64>().ln()
+    let top = z.iter().position(|&v| v == m).unwrap_or(0);
+    let rest: f64 = z
+        .iter()
+        .enumerate()
+        .filter(|&(j, _)| j != top)
+        .map(|(_, &v)| (v - m).exp())
+        .sum();
+    m + rest.ln_1p()
 }
 
 /// Below this argument [`exp_nonpositive`] returns 0: e^−708 ≈ 3e−308 is the smallest power that

@@ -1,5 +1,6 @@
 //! `candor check FILE...`
 
+use super::say;
 use super::EXIT_CHECK_FAILED;
 use crate::mapfile::CalibrationMap;
 use std::path::PathBuf;
@@ -22,7 +23,7 @@ pub(super) fn run(args: &CheckArgs) -> anyhow::Result<ExitCode> {
                     .policy()
                     .global_threshold()
                     .map_or_else(|| "none".to_owned(), |t| t.to_string());
-                println!(
+                say!(
                     "ok {}: model {} version {}, {} classes, method {}, threshold {}, {}",
                     path.display(),
                     m.model(),
@@ -35,7 +36,7 @@ pub(super) fn run(args: &CheckArgs) -> anyhow::Result<ExitCode> {
             }
             Err(e) => {
                 failed += 1;
-                println!("FAILED {e}");
+                say!("FAILED {e}");
             }
         }
     }

@@ -1,5 +1,6 @@
 //! `candor demo`: the main job end to end on the Fernhill Water scenario.
 
+use super::say;
 use crate::decision::DecisionPolicy;
 use crate::demo::{self, Letters};
 use crate::mapfile::{CalibrationMap, MapParts};
@@ -30,7 +31,7 @@ pub(super) fn run(args: &DemoArgs) -> anyhow::Result<ExitCode> {
     if let Some(dir) = &args.write_data {
         demo::write_data(dir)
             .with_context(|| format!("writing demo data into {}", dir.display()))?;
-        println!(
+        say!(
             "wrote {}/calibration.jsonl, traffic.jsonl and maps/{}.json",
             dir.display(),
             demo::MODEL
@@ -77,6 +78,11 @@ async fn run_demo() -> anyhow::Result<()> {
     let cal = demo::calibration_set();
     let traffic = demo::traffic_set();
     let map = demo::fit_demo_map(&cal)?;
+    let threshold = map
+        .policy()
+        .global_threshold()
+        .context("the demo map certified no threshold")?;
+    let evidence = map.policy().evidence().cloned().unwrap_or_default();
     let baseline = CalibrationMap::from_parts(MapParts {
         model: BASELINE_MODEL.into(),
         map_version: "softmax".into(),
@@ -84,7 +90,7 @@ async fn run_demo() -> anyhow::Result<()> {
         class_names: map.class_names().map(<[String]>::to_vec),
         input: map.input(),
         method: Method::Identity,
-        policy: DecisionPolicy::global(demo::THRESHOLD),
+        policy: DecisionPolicy::global(threshold),
         provenance: serde_json::Map::new(),
     })?;
     let dir = tempfile::tempdir().context("creating a temporary map directory")?;
@@ -131,42 +137,58 @@ async fn run_demo() -> anyhow::Result<()> {
             .unwrap_or(f64::NAN)
     };
     let n = traffic.len();
-    println!("candor demo: Fernhill Water sorts customer letters into 6 trays");
-    println!("  ({})", demo::CLASS_NAMES.join(", "));
-    println!();
-    println!(
-        "Fernhill auto-routes a letter only when the model is at least {:.0}% sure;",
-        demo::THRESHOLD * 100.0
+    say!("candor demo: Fernhill Water sorts customer letters into 6 trays");
+    say!("  ({})", demo::CLASS_NAMES.join(", "));
+    say!();
+    say!(
+        "Fernhill wants at least {:.0}% of auto-routed letters in the right tray, with {:.0}%",
+        demo::TARGET_ACCURACY * 100.0,
+        demo::CONFIDENCE * 100.0
     );
-    println!("every other letter goes to a person.");
-    println!();
-    println!(
-        "1. Fit: temperature scaling on {} labelled letters held out from training",
+    say!("statistical confidence; every other letter goes to a person.");
+    say!();
+    let fit_rows = map.provenance()["fit_data"]["rows"].as_u64().unwrap_or(0);
+    say!(
+        "1. Fit: temperature scaling on {fit_rows} of {} labelled letters held out from training",
         cal.len()
     );
-    println!("   T = {t:.3} (the model's logits are {t:.1}x too sharp)");
-    println!(
+    say!("   T = {t:.3} (the model's logits are {t:.1}x too sharp)");
+    say!(
         "   log loss on those letters: {:.3} before, {:.3} after",
         metric("before", "nll"),
         metric("after", "nll")
     );
-    println!();
-    println!("2. Serve: {n} new letters streamed twice through the sidecar on {addr}");
-    println!(
+    say!(
+        "   Certify (SGR) on the other {} letters: auto-route when calibrated confidence ≥ {threshold:.4};",
+        evidence.items.unwrap_or(0)
+    );
+    say!(
+        "   {} of them would be auto-routed, and at {:.0}% confidence at least {:.1}% of those are right.",
+        evidence.accepted.unwrap_or(0),
+        demo::CONFIDENCE * 100.0,
+        100.0 * evidence.certified_accuracy.unwrap_or(f64::NAN)
+    );
+    say!();
+    say!("2. Serve: {n} new letters streamed twice through the sidecar on {addr}");
+    say!(
         "   ({} rows in {:.2} s over gRPC)",
         2 * n,
         elapsed.as_secs_f64()
     );
-    println!();
-    println!(
+    say!();
+    say!(
         "   {:<22} {:>16} {:>10} {:>18} {:>18}",
-        "", "auto-routed", "to people", "right (auto)", "right (people)"
+        "",
+        "auto-routed",
+        "to people",
+        "right (auto)",
+        "right (people)"
     );
     for (name, tally) in [
         ("raw model confidence", &before),
         ("candor-calibrated", &after),
     ] {
-        println!(
+        say!(
             "   {:<22} {:>7} ({:>6}) {:>10} {:>18} {:>18}",
             name,
             tally.accepted,
@@ -176,21 +198,20 @@ async fn run_demo() -> anyhow::Result<()> {
             pct(tally.deferred_right, tally.deferred),
         );
     }
-    println!();
+    say!();
     let wrong_before = before.accepted - before.accepted_right;
     let wrong_after = after.accepted - after.accepted_right;
-    println!(
+    say!(
         "Raw confidence auto-routed {wrong_before} letters to the wrong tray ({} of its automated letters)",
         pct(wrong_before, before.accepted)
     );
-    println!(
-        "although it claimed at least {:.0}%. After recalibration: {wrong_after} ({}).",
-        demo::THRESHOLD * 100.0,
+    say!(
+        "although it claimed at least {:.1}%. After recalibration: {wrong_after} ({}).",
+        threshold * 100.0,
         pct(wrong_after, after.accepted)
     );
-    println!();
-    println!("The threshold here is a fixed policy, not yet certified on held-out data; and any");
-    println!("guarantee holds only while live letters resemble the calibration letters.");
+    say!();
+    say!("The guarantee holds only while live letters resemble the calibration letters.");
     Ok(())
 }
 

@@ -10,7 +10,7 @@ use std::path::PathBuf;
 /// `--logits X.npy [--labels y.npy]` or `--data FILE.csv|FILE.jsonl`.
 #[derive(Debug, Clone, clap::Args)]
 pub struct InputArgs {
-    /// Logits as .npy, float32 or float64, shape [N, K] (or [N] / [N, 1]: one binary log-odds
+    /// Logits as .npy, float32 or float64, shape \[N, K\] (or \[N\] / \[N, 1\]: one binary log-odds
     /// score per row).
     #[arg(
         long,
@@ -19,7 +19,7 @@ pub struct InputArgs {
         required_unless_present = "data"
     )]
     pub logits: Option<PathBuf>,
-    /// Integer labels as .npy, shape [N] (with --logits).
+    /// Integer labels as .npy, shape \[N\] (with --logits).
     #[arg(long, value_name = "Y.npy", requires = "logits")]
     pub labels: Option<PathBuf>,
     /// Logits and labels as CSV (header; a `label` column, every other column a logit) or JSON
@@ -97,6 +97,26 @@ pub fn calibrate(map: &CalibrationMap, set: &LabelledSet) -> anyhow::Result<Vec<
         map.classes()
     );
     Ok(apply_rows(map.method(), set))
+}
+
+/// Applies a fitted `method` (for data with `k` values per row and `classes` classes) to another
+/// data set, checking the shape.
+///
+/// # Errors
+/// A data set with a different number of values per row.
+pub fn calibrate_set(
+    method: &Method,
+    k: usize,
+    classes: usize,
+    other: &LabelledSet,
+) -> anyhow::Result<Vec<f64>> {
+    anyhow::ensure!(
+        other.k() == k,
+        "the certification data has {} value(s) per row, the fit data {k}",
+        other.k()
+    );
+    debug_assert_eq!(other.classes(), classes);
+    Ok(apply_rows(method, other))
 }
 
 /// Plain softmax of every row (the uncalibrated baseline).

@@ -1,12 +1,25 @@
 //! The `candor` command line. Exit codes: 0 success, 1 a check failed, 2 an error (bad usage,
 //! unreadable input, a server that could not start).
 
+mod apply;
 mod check;
 mod demo;
+mod eval;
+mod fit;
 pub mod inputs;
+mod policy;
 mod serve;
 
 use clap::{Parser, Subcommand};
+
+/// Prints a line to standard output, ignoring a closed pipe (`candor eval | head` must not panic).
+macro_rules! say {
+    ($($arg:tt)*) => {{
+        use std::io::Write as _;
+        let _ = writeln!(std::io::stdout(), $($arg)*);
+    }};
+}
+pub(crate) use say;
 use std::process::ExitCode;
 
 /// Exit code: a check found problems.
@@ -33,6 +46,12 @@ enum Command {
     Serve(serve::ServeArgs),
     /// Validate map files with the same validator the sidecar uses; exit 1 if any has problems.
     Check(check::CheckArgs),
+    /// Fit a recalibration map from held-out logits and labels and choose its threshold.
+    Fit(Box<fit::FitArgs>),
+    /// Recalibrate a whole file of logits offline with a map.
+    Apply(Box<apply::ApplyArgs>),
+    /// Evaluate a map on labelled data: metrics before and after with bootstrap intervals.
+    Eval(Box<eval::EvalArgs>),
     /// Run the main job end to end on demo data: start a sidecar, stream letters through it,
     /// compare decisions before and after recalibration.
     Demo(demo::DemoArgs),
@@ -45,6 +64,9 @@ pub fn main() -> ExitCode {
         Command::Serve(args) => serve::run(args),
         Command::Check(args) => check::run(&args),
         Command::Demo(args) => demo::run(&args),
+        Command::Fit(args) => fit::run(&args),
+        Command::Eval(args) => eval::run(&args),
+        Command::Apply(args) => apply::run(&args),
     };
     match result {
         Ok(code) => code,

@@ -11,5 +11,5 @@ mod scenario;
 
 pub use scenario::{
     calibration_set, fit_demo_map, generate, traffic_set, write_data, Letters, CALIBRATION_ROWS,
-    CLASS_NAMES, MODEL, THRESHOLD, TRAFFIC_ROWS,
+    CLASS_NAMES, CONFIDENCE, HOLDOUT, MODEL, TARGET_ACCURACY, TRAFFIC_ROWS,
 };

@@ -18,6 +18,8 @@ mod lbfgs;
 pub mod odir;
 pub mod ovr;
 pub mod platt;
+pub mod select;
+pub mod split;
 pub mod temperature;
 
 pub use error::FitError;
