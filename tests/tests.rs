@@ -1,6 +1,7 @@
 //! Integration tests: one binary, one module per topic.
 
 mod cli;
+mod conformance;
 mod offline;
 mod serve;
 mod support;
