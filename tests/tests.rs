@@ -1,5 +1,6 @@
 //! Integration tests: one binary, one module per topic.
 
 mod cli;
+mod report;
 mod serve;
 mod support;

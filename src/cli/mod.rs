@@ -4,6 +4,7 @@
 mod check;
 mod demo;
 pub mod inputs;
+mod report;
 mod serve;
 
 use clap::{Parser, Subcommand};
@@ -36,6 +37,8 @@ enum Command {
     /// Run the main job end to end on demo data: start a sidecar, stream letters through it,
     /// compare decisions before and after recalibration.
     Demo(demo::DemoArgs),
+    /// Write a self-contained HTML report of a map on labelled data for a reviewer to sign off.
+    Report(report::ReportArgs),
 }
 
 /// Parses the process arguments and runs the command.
@@ -45,6 +48,7 @@ pub fn main() -> ExitCode {
         Command::Serve(args) => serve::run(args),
         Command::Check(args) => check::run(&args),
         Command::Demo(args) => demo::run(&args),
+        Command::Report(args) => report::run(&args),
     };
     match result {
         Ok(code) => code,
