@@ -14,6 +14,7 @@
 //! - [`service`] — the gRPC handlers and the one mapping of errors to status codes.
 //! - [`server`] — running the sidecar: data plane, health, reflection, graceful shutdown.
 //! - [`proto`] — generated protobuf code.
+//! - [`report`] — the reviewer's HTML report: charts, tables and the policy evidence (pure).
 //! - [`demo`] — the demo scenario and its deterministic data generator.
 //! - [`cli`] — the `candor` command line.
 #![forbid(unsafe_code)]
@@ -29,6 +30,7 @@ pub mod method;
 pub mod numeric;
 pub mod proto;
 pub mod registry;
+pub mod report;
 pub mod server;
 pub mod service;
 pub mod stats;

@@ -3,5 +3,6 @@
 mod cli;
 mod conformance;
 mod offline;
+mod report;
 mod serve;
 mod support;

@@ -10,7 +10,7 @@ use std::path::PathBuf;
 /// `--logits X.npy [--labels y.npy]` or `--data FILE.csv|FILE.jsonl`.
 #[derive(Debug, Clone, clap::Args)]
 pub struct InputArgs {
-    /// Logits as .npy, float32 or float64, shape \[N, K\] (or \[N\] / \[N, 1\]: one binary log-odds
+    /// Logits as .npy, float32 or float64, shape N × K (or N, or N × 1: one binary log-odds
     /// score per row).
     #[arg(
         long,
@@ -19,7 +19,7 @@ pub struct InputArgs {
         required_unless_present = "data"
     )]
     pub logits: Option<PathBuf>,
-    /// Integer labels as .npy, shape \[N\] (with --logits).
+    /// Integer labels as .npy, shape N (with --logits).
     #[arg(long, value_name = "Y.npy", requires = "logits")]
     pub labels: Option<PathBuf>,
     /// Logits and labels as CSV (header; a `label` column, every other column a logit) or JSON

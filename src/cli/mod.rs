@@ -8,6 +8,7 @@ mod eval;
 mod fit;
 pub mod inputs;
 mod policy;
+mod report;
 mod serve;
 
 use clap::{Parser, Subcommand};
@@ -55,6 +56,8 @@ enum Command {
     /// Run the main job end to end on demo data: start a sidecar, stream letters through it,
     /// compare decisions before and after recalibration.
     Demo(demo::DemoArgs),
+    /// Write a self-contained HTML report of a map on labelled data for a reviewer to sign off.
+    Report(report::ReportArgs),
 }
 
 /// Parses the process arguments and runs the command.
@@ -67,6 +70,7 @@ pub fn main() -> ExitCode {
         Command::Fit(args) => fit::run(&args),
         Command::Eval(args) => eval::run(&args),
         Command::Apply(args) => apply::run(&args),
+        Command::Report(args) => report::run(&args),
     };
     match result {
         Ok(code) => code,
