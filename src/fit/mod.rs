@@ -19,6 +19,7 @@ pub mod odir;
 pub mod ovr;
 pub mod platt;
 pub mod temperature;
+mod temperature_pass;
 
 pub use error::FitError;
 
