@@ -104,7 +104,7 @@ pub fn exp_nonpositive(x: f64) -> f64 {
 const LANES: usize = 8;
 
 /// Largest element, with eight running maxima (NaN must have been rejected by the caller).
-#[inline]
+#[inline(always)]
 fn max_lanes(z: &[f64]) -> f64 {
     let mut acc = [f64::NEG_INFINITY; LANES];
     let chunks = z.chunks_exact(LANES);
@@ -126,14 +126,14 @@ fn max_lanes(z: &[f64]) -> f64 {
 /// Computes `exp(z_k − m)` once per element (by [`exp_nonpositive`]) and divides by their sum,
 /// accumulated in eight lanes and reduced in a fixed order. An all −∞ row cannot be normalised
 /// and becomes uniform; +∞ entries share the mass.
-#[inline]
+#[inline(always)]
 pub fn softmax_in_place(z: &mut [f64]) -> f64 {
     softmax_scaled_in_place(z, 1.0)
 }
 
 /// Overwrites `z` with `softmax(β·z)` for β > 0 in one pass fewer than scaling first, and returns
 /// `lse(β·z)`. Since β > 0, max(β·z) = β·max(z) and every exponent is β·(z_k − max z) ≤ 0.
-#[inline]
+#[inline(always)]
 pub fn softmax_scaled_in_place(z: &mut [f64], beta: f64) -> f64 {
     debug_assert!(beta > 0.0);
     let m = max_lanes(z);

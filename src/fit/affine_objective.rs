@@ -9,6 +9,8 @@
 
 use std::ops::Range;
 
+use pulp::{Arch, Simd, WithSimd};
+
 use super::lbfgs::Smooth;
 use crate::numeric::{softmax_in_place, Logit};
 
@@ -68,6 +70,27 @@ pub(crate) struct AffineObjective<'a, X> {
     /// Classes whose parameters stay at the identity (their gradient is zeroed).
     frozen: Vec<bool>,
     threads: usize,
+    /// The instruction set the row loops are compiled for (see [`ChunkJob`]).
+    arch: Arch,
+}
+
+/// One chunk's sums as a job for [`Arch::dispatch`]: compiled for the widest vector instructions
+/// detected at run time (AVX-512, AVX2, x86-64 baseline), with the same result on each.
+struct ChunkJob<'o, 'a, 'g, X> {
+    objective: &'o AffineObjective<'a, X>,
+    params: &'o [f64],
+    rows: Range<usize>,
+    gradient: Option<&'g mut [f64]>,
+}
+
+impl<X: Logit> WithSimd for ChunkJob<'_, '_, '_, X> {
+    type Output = f64;
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, _simd: S) -> f64 {
+        self.objective
+            .chunk_sum(self.params, self.rows, self.gradient)
+    }
 }
 
 impl<'a, X: Logit> AffineObjective<'a, X> {
@@ -91,7 +114,14 @@ impl<'a, X: Logit> AffineObjective<'a, X> {
             penalty,
             frozen,
             threads: threads.max(1),
+            arch: Arch::new(),
         }
+    }
+
+    /// The same objective with its row loops compiled for `arch` (tests compare instruction sets).
+    #[cfg(test)]
+    pub(crate) fn with_arch(self, arch: Arch) -> Self {
+        AffineObjective { arch, ..self }
     }
 
     /// Σ_i −ln q_{i,y_i} over all rows (no penalty, not divided by n).
@@ -168,11 +198,18 @@ impl<'a, X: Logit> AffineObjective<'a, X> {
             let start = (first + c) * CHUNK_ROWS;
             let rows = start..(start + CHUNK_ROWS).min(n);
             let g = (p > 0).then(|| &mut gradients[c * p..(c + 1) * p]);
-            *loss = self.chunk_sum(params, rows, g);
+            *loss = self.arch.dispatch(ChunkJob {
+                objective: self,
+                params,
+                rows,
+                gradient: g,
+            });
         }
     }
 
-    /// Σ over `rows` of −ln q_{i,y_i}; adds Σ ∂/∂θ into `gradient` when given.
+    /// Σ over `rows` of −ln q_{i,y_i}; adds Σ ∂/∂θ into `gradient` when given. Inlined with all it
+    /// calls, so all of it is compiled for the instruction set [`ChunkJob`] picks.
+    #[inline(always)]
     fn chunk_sum(
         &self,
         params: &[f64],
@@ -200,6 +237,7 @@ impl<'a, X: Logit> AffineObjective<'a, X> {
     }
 
     /// u ← w ⊙ x + b or W x + b.
+    #[inline(always)]
     fn forward(&self, params: &[f64], x: &[f64], u: &mut [f64]) {
         let k = self.classes;
         let b = &params[self.shape.bias_offset(k)..];
@@ -219,6 +257,7 @@ impl<'a, X: Logit> AffineObjective<'a, X> {
     }
 
     /// g_w += r ⊙ x (or g_W += r xᵀ) and g_b += r.
+    #[inline(always)]
     fn accumulate(&self, x: &[f64], r: &[f64], g: &mut [f64]) {
         let k = self.classes;
         let (gw, gb) = g.split_at_mut(self.shape.bias_offset(k));

@@ -21,6 +21,7 @@ pub mod platt;
 pub mod select;
 pub mod split;
 pub mod temperature;
+mod temperature_pass;
 
 pub use error::FitError;
 
