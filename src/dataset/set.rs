@@ -47,7 +47,7 @@ impl LabelledSet {
         if k == 0 {
             return Err(DatasetError::file(path, ErrorKind::NoLogitColumns));
         }
-        if len % k != 0 {
+        if !len.is_multiple_of(k) {
             let got = len % k;
             return Err(DatasetError::new(
                 path,

@@ -114,7 +114,7 @@ fn format_value(out: &mut String, x: f64) {
 
 /// Number of rows, or an error if `probs` is not n × k with k ≥ 1.
 fn rows(path: &Path, probs: &[f64], k: usize) -> Result<usize, DatasetError> {
-    if k == 0 || probs.len() % k != 0 {
+    if k == 0 || !probs.len().is_multiple_of(k) {
         let kind = ErrorKind::Ragged {
             expected: k,
             got: probs.len(),

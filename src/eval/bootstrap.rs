@@ -132,7 +132,7 @@ impl IndexMatrix {
                 what: "bootstrap index matrix",
             });
         }
-        if indices.len() % n != 0 {
+        if !indices.len().is_multiple_of(n) {
             let expected = indices.len().div_ceil(n) * n;
             return Err(EvalError::Length {
                 what: "bootstrap index matrix",

@@ -179,7 +179,7 @@ pub(crate) fn check_rows<L: Logit>(
             "at least 2 classes are needed",
         ));
     }
-    if logits.len() % classes != 0 {
+    if !logits.len().is_multiple_of(classes) {
         let reason = format!("length is not a multiple of K = {classes}");
         return Err(bad_option("logits", logits.len(), &reason));
     }

@@ -141,7 +141,7 @@ pub fn fit_one_vs_rest<L: Logit, F: BinaryFit>(
 }
 
 fn check_shape(len: usize, columns: usize, labels: usize) -> Result<(), FitError> {
-    if columns == 0 || len % columns != 0 {
+    if columns == 0 || !len.is_multiple_of(columns) {
         return Err(FitError::BadOption {
             name: "columns",
             value: columns.to_string(),

@@ -45,7 +45,7 @@ impl<'a, L: Logit> Rows<'a, L> {
         if width == 0 || values.is_empty() {
             return Err(FitError::Empty);
         }
-        if values.len() % width != 0 {
+        if !values.len().is_multiple_of(width) {
             return Err(FitError::BadOption {
                 name: "classes",
                 value: width.to_string(),
