@@ -133,22 +133,14 @@ pub fn fit_choice<L: Logit>(
             let (v, d) = fit_vector(logits, classes, labels, affine)?;
             one((Method::Vector(v), d))
         }
-        MethodChoice::Matrix(s) | MethodChoice::Dirichlet(s) => {
-            let dirichlet = matches!(choice, MethodChoice::Dirichlet(_));
-            let strength = match s {
-                Strength::Fixed(v) => *v,
-                Strength::CrossValidated => {
-                    let family = if dirichlet {
-                        OdirFamily::Dirichlet {
-                            epsilon: super::affine::DIRICHLET_EPSILON,
-                        }
-                    } else {
-                        OdirFamily::Matrix
-                    };
-                    let search = OdirSearch::new(family, seed);
-                    cross_validate_odir(logits, classes, labels, &search, affine)?.strength
-                }
-            };
+        MethodChoice::Matrix(Strength::CrossValidated)
+        | MethodChoice::Dirichlet(Strength::CrossValidated) => {
+            let fixed = fix_strength(choice.clone(), logits, columns, labels, seed)?;
+            return fit_choice(&fixed, logits, columns, labels, seed);
+        }
+        MethodChoice::Matrix(Strength::Fixed(strength))
+        | MethodChoice::Dirichlet(Strength::Fixed(strength)) => {
+            let (strength, dirichlet) = (*strength, matches!(choice, MethodChoice::Dirichlet(_)));
             let reg = Regularisation::odir(strength);
             let (method, d) = if dirichlet {
                 let eps = super::affine::DIRICHLET_EPSILON;
