@@ -1,22 +1,13 @@
 //! The real `candor` binary.
 
-use crate::support::temperature_map;
+use crate::support::{candor, repo, temperature_map};
 use candor::proto::v1::calibrator_client::CalibratorClient;
 use candor::proto::v1::CalibrateRequest;
 use std::io::{BufRead, BufReader};
-use std::path::Path;
 use std::process::{Command, Stdio};
 use tonic_health::pb::health_check_response::ServingStatus;
 use tonic_health::pb::health_client::HealthClient;
 use tonic_health::pb::HealthCheckRequest;
-
-fn candor() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_candor"))
-}
-
-fn repo(path: &str) -> std::path::PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join(path)
-}
 
 #[test]
 fn check_accepts_a_valid_map_and_lists_every_problem_of_a_bad_one() {

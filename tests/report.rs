@@ -1,15 +1,7 @@
 //! `candor report` on the demo data, through the real binary.
 
+use crate::support::{candor, repo};
 use std::path::Path;
-use std::process::Command;
-
-fn candor() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_candor"))
-}
-
-fn repo(path: &str) -> std::path::PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join(path)
-}
 
 #[test]
 fn report_on_demo_traffic_writes_a_self_contained_page() {

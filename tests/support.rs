@@ -7,10 +7,22 @@ use candor::proto::v1::calibrator_client::CalibratorClient;
 use candor::registry::Registry;
 use candor::server::{run, ServeOptions};
 use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::process::Command;
 use std::sync::Arc;
 use tokio::sync::oneshot;
 use tokio::task::JoinHandle;
 use tonic::transport::Channel;
+
+/// The real `candor` binary.
+pub fn candor() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_candor"))
+}
+
+/// A path inside the repository.
+pub fn repo(path: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join(path)
+}
 
 /// A map for `model` with `method`, K classes and a global threshold.
 pub fn map(

@@ -211,12 +211,10 @@ fn evidence_ranges_are_checked() {
 
 #[test]
 fn every_method_kind_round_trips() {
-    let k3 = |maps: usize| maps;
     let methods = vec![
         Method::Identity,
         Method::Platt(
-            OneVsRest::try_new(3, vec![Platt::try_new(-1.0, 0.1, "m").unwrap(); k3(3)], "m")
-                .unwrap(),
+            OneVsRest::try_new(3, vec![Platt::try_new(-1.0, 0.1, "m").unwrap(); 3], "m").unwrap(),
         ),
         Method::Histogram(
             OneVsRest::try_new(
