@@ -4,9 +4,14 @@
 use std::path::PathBuf;
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
-    let proto = "proto/candor/v1/calibrator.proto";
-    println!("cargo:rerun-if-changed={proto}");
-    let fds = protox::compile([proto], ["proto"])?;
+    let protos = [
+        "proto/candor/v1/calibrator.proto",
+        "proto/candor/v1/admin.proto",
+    ];
+    for p in protos {
+        println!("cargo:rerun-if-changed={p}");
+    }
+    let fds = protox::compile(protos, ["proto"])?;
     let out = PathBuf::from(std::env::var("OUT_DIR")?);
     std::fs::write(
         out.join("candor_descriptor.bin"),

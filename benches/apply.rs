@@ -85,7 +85,7 @@ fn bench_apply(c: &mut Criterion) {
             model: "bench".into(),
             logits: logits(k),
             request_id: "bench-1".into(),
-            top_k: 0,
+            ..CalibrateRequest::default()
         };
         group.bench_with_input(BenchmarkId::new("temperature", k), &req, |b, req| {
             b.iter(|| {

@@ -5,8 +5,11 @@
 //! the server when they are done.
 
 use crate::proto::v1::calibrator_server::CalibratorServer;
+use crate::proto::v1::map_control_server::MapControlServer;
 use crate::registry::Registry;
-use crate::service::CalibratorService;
+use crate::service::{
+    check_token, AdminToken, CalibratorService, MapControlService, MAX_PUSH_BYTES,
+};
 use std::future::Future;
 use std::sync::Arc;
 use std::time::Duration;
@@ -82,6 +85,7 @@ pub async fn run(
     });
 
     let (drain_tx, drain_rx) = tokio::sync::oneshot::channel::<()>();
+    let (draining_tx, draining) = tokio::sync::watch::channel(false);
     let stop = async move {
         shutdown.await;
         readiness_task.abort();
@@ -91,13 +95,16 @@ pub async fn run(
                 .await;
         }
         tracing::info!("shutting down: health is NOT_SERVING, draining in-flight requests");
+        draining_tx.send_replace(true);
         let _ = drain_tx.send(());
     };
 
     let server = tonic::transport::Server::builder()
         .add_service(health)
         .add_service(reflection)
-        .add_service(CalibratorServer::new(CalibratorService::new(registry)))
+        .add_service(CalibratorServer::new(CalibratorService::new(
+            registry, draining,
+        )))
         .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
     tokio::pin!(server);
     let grace = options.grace_period;
@@ -117,4 +124,28 @@ pub async fn run(
             Ok(())
         }
     }
+}
+
+/// Serves the admin plane (`candor.v1.MapControl`) until `shutdown` completes. With a token,
+/// every call must carry it; the caller decides whether running without one is allowed (the CLI
+/// allows it only on a loopback address).
+///
+/// # Errors
+/// [`ServeError`] when the transport fails.
+pub async fn run_admin(
+    listener: TcpListener,
+    registry: Arc<Registry>,
+    token: Option<AdminToken>,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> Result<(), ServeError> {
+    let service = tonic::service::interceptor::InterceptedService::new(
+        MapControlServer::new(MapControlService::new(registry))
+            .max_decoding_message_size(MAX_PUSH_BYTES + 1024),
+        check_token(token),
+    );
+    tonic::transport::Server::builder()
+        .add_service(service)
+        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), shutdown)
+        .await
+        .map_err(ServeError::from)
 }

@@ -179,7 +179,7 @@ async fn serve_starts_turns_healthy_answers_and_exits_cleanly_on_sigterm() {
             model: "triage".into(),
             logits: vec![4.0, 0.0, 0.0],
             request_id: "x".into(),
-            top_k: 0,
+            ..CalibrateRequest::default()
         })
         .await
         .unwrap()

@@ -269,7 +269,7 @@ async fn apply_gives_the_sidecars_numbers() {
                 model: "letters".into(),
                 logits,
                 request_id: String::new(),
-                top_k: 0,
+                ..CalibrateRequest::default()
             })
             .await
             .unwrap()

@@ -19,7 +19,7 @@ fn req(model: &str, logits: &[f32]) -> CalibrateRequest {
         model: model.into(),
         logits: logits.to_vec(),
         request_id: "r-1".into(),
-        top_k: 0,
+        ..CalibrateRequest::default()
     }
 }
 
@@ -413,7 +413,7 @@ async fn reflection_lists_the_services() {
 }
 
 #[tokio::test]
-async fn shutdown_lets_an_open_stream_finish() {
+async fn shutdown_ends_an_open_stream_with_unavailable_after_answering_what_it_read() {
     let mut sidecar = Sidecar::with_maps(vec![temperature_map()]).await;
     let mut client = sidecar.client().await;
     let (tx, rx) = tokio::sync::mpsc::channel::<CalibrateRequest>(4);
@@ -423,13 +423,19 @@ async fn shutdown_lets_an_open_stream_finish() {
         .unwrap()
         .into_inner();
     tx.send(req("triage", &[1.0, 0.0, 0.0])).await.unwrap();
-    assert!(responses.message().await.unwrap().is_some());
-    // Begin shutdown while the stream is open; it must still be answered until it ends.
-    sidecar.begin_stop();
-    tx.send(req("triage", &[0.0, 1.0, 0.0])).await.unwrap();
     let r = responses.message().await.unwrap().unwrap();
     assert!(matches!(r.outcome, Some(Outcome::Response(_))));
+    // Shutdown begins while the stream is open: it ends with UNAVAILABLE, so the caller knows
+    // every row without an answer was not processed and can send it elsewhere.
+    sidecar.begin_stop();
+    let _ = tx.send(req("triage", &[0.0, 1.0, 0.0])).await;
+    let end = responses.message().await.unwrap_err();
+    assert_eq!(end.code(), tonic::Code::Unavailable, "{end:?}");
+    assert_eq!(
+        sidecar.registry.decision_counts()[0].2 + sidecar.registry.decision_counts()[0].3,
+        1,
+        "only the answered row was counted"
+    );
     drop(tx);
-    assert!(responses.message().await.unwrap().is_none());
     sidecar.stop().await;
 }

@@ -226,7 +226,7 @@ async fn stream_through(
             model: model.to_owned(),
             logits: letters.row(i).to_vec(),
             request_id: format!("letter-{i}"),
-            top_k: 0,
+            ..CalibrateRequest::default()
         })
         .collect();
     let mut responses = client

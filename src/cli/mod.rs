@@ -7,6 +7,7 @@ mod demo;
 mod eval;
 mod fit;
 pub mod inputs;
+mod maps;
 mod policy;
 mod report;
 mod serve;
@@ -58,6 +59,8 @@ enum Command {
     Demo(demo::DemoArgs),
     /// Write a self-contained HTML report of a map on labelled data for a reviewer to sign off.
     Report(report::ReportArgs),
+    /// Roll maps out on a running sidecar: list, push, activate, rollback, canary, shadow.
+    Maps(maps::MapsArgs),
 }
 
 /// Parses the process arguments and runs the command.
@@ -71,6 +74,7 @@ pub fn main() -> ExitCode {
         Command::Eval(args) => eval::run(&args),
         Command::Apply(args) => apply::run(&args),
         Command::Report(args) => report::run(&args),
+        Command::Maps(args) => maps::run(&args),
     };
     match result {
         Ok(code) => code,

@@ -1,19 +1,57 @@
 //! `candor serve`: configuration parsed once, then the sidecar runs until SIGTERM or SIGINT.
 
-use crate::registry::{load_dir, Registry};
-use crate::server::{run as serve, ServeOptions};
+use crate::registry::{spawn_store_watcher, Registry, WatchOptions};
+use crate::server::{run as serve, run_admin, ServeOptions};
+use crate::service::AdminToken;
 use anyhow::Context;
 use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::Duration;
+use tokio::sync::watch;
 
 /// Arguments of `candor serve`. Every flag has a CANDOR_* environment fallback.
 #[derive(Debug, clap::Args)]
 pub struct ServeArgs {
-    /// Directory of map files (DIR/*.json or DIR/<model>/*.json; one map per model).
+    /// The map store: DIR/<model>/<version>.json plus an optional DIR/<model>/active-version
+    /// pointer file, and/or flat DIR/*.json files. Watched for changes.
     #[arg(long, env = "CANDOR_MAPS", value_name = "DIR")]
     maps: PathBuf,
+    /// Seconds between full rescans of the map store (the fallback when file events are lost).
+    #[arg(
+        long,
+        env = "CANDOR_RESCAN_SECS",
+        default_value_t = 5,
+        value_name = "SECS",
+        value_parser = clap::value_parser!(u64).range(1..)
+    )]
+    rescan_secs: u64,
+    /// Do not watch the store for file events; rely on the periodic rescan and SIGHUP.
+    #[arg(long, env = "CANDOR_NO_FILE_EVENTS")]
+    no_file_events: bool,
+    /// Address of the admin listener (MapControl), or "off". Without a token it must be a
+    /// loopback address.
+    #[arg(
+        long,
+        env = "CANDOR_ADMIN_LISTEN",
+        default_value = "127.0.0.1:50552",
+        value_name = "ADDR|off",
+        value_parser = parse_admin_listen
+    )]
+    admin_listen: AdminListen,
+    /// File holding the admin bearer token (surrounding whitespace ignored).
+    #[arg(long, env = "CANDOR_ADMIN_TOKEN_FILE", value_name = "PATH")]
+    admin_token_file: Option<PathBuf>,
+    /// The admin bearer token itself. Prefer the environment variable or --admin-token-file:
+    /// a flag's value is visible to other users in the process list.
+    #[arg(
+        long,
+        env = "CANDOR_ADMIN_TOKEN",
+        hide_env_values = true,
+        value_name = "TOKEN",
+        conflicts_with = "admin_token_file"
+    )]
+    admin_token: Option<String>,
     /// Address for the gRPC listener.
     #[arg(
         long,
@@ -41,6 +79,24 @@ pub struct ServeArgs {
         value_name = "FILTER"
     )]
     log: String,
+}
+
+/// Where the admin plane listens.
+#[derive(Debug, Clone, Copy)]
+enum AdminListen {
+    /// No admin listener.
+    Off,
+    /// This address.
+    On(SocketAddr),
+}
+
+fn parse_admin_listen(s: &str) -> Result<AdminListen, String> {
+    if s == "off" {
+        return Ok(AdminListen::Off);
+    }
+    s.parse()
+        .map(AdminListen::On)
+        .map_err(|e| format!("{s:?} is neither an address nor \"off\": {e}"))
 }
 
 /// How log lines are written.
@@ -72,20 +128,60 @@ pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
     if !args.maps.is_dir() {
         anyhow::bail!("--maps {}: not a directory", args.maps.display());
     }
+    let token = admin_token(&args)?;
+    if let (AdminListen::On(addr), None) = (args.admin_listen, &token) {
+        anyhow::ensure!(
+            addr.ip().is_loopback(),
+            "--admin-listen {addr} is not a loopback address and no admin token is set; set \
+             --admin-token-file or CANDOR_ADMIN_TOKEN, or listen on 127.0.0.1"
+        );
+    }
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
         .context("starting the async runtime")?;
-    runtime.block_on(serve_until_signal(args))?;
+    runtime.block_on(serve_until_signal(args, token))?;
     Ok(ExitCode::SUCCESS)
 }
 
-async fn serve_until_signal(args: ServeArgs) -> anyhow::Result<()> {
+fn admin_token(args: &ServeArgs) -> anyhow::Result<Option<AdminToken>> {
+    let text = match (&args.admin_token_file, &args.admin_token) {
+        (Some(path), _) => std::fs::read_to_string(path)
+            .with_context(|| format!("reading --admin-token-file {}", path.display()))?,
+        (None, Some(t)) => t.clone(),
+        (None, None) => return Ok(None),
+    };
+    AdminToken::try_new(&text)
+        .map(Some)
+        .map_err(|e| anyhow::anyhow!("{e}"))
+}
+
+/// A future that completes once `stop` turns true (or its sender is gone).
+async fn stopped(mut stop: watch::Receiver<bool>) {
+    let _ = stop.wait_for(|s| *s).await;
+}
+
+async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyhow::Result<()> {
     let listener = tokio::net::TcpListener::bind(args.listen)
         .await
         .with_context(|| format!("binding {}", args.listen))?;
     let addr = listener.local_addr()?;
-    let registry = Registry::new();
+    let admin_listener = match args.admin_listen {
+        AdminListen::Off => None,
+        AdminListen::On(a) => Some(
+            tokio::net::TcpListener::bind(a)
+                .await
+                .with_context(|| format!("binding the admin listener {a}"))?,
+        ),
+    };
+    // watch: one stop signal fanned out to the data plane, the admin plane and the watcher.
+    let (stop_tx, stop_rx) = watch::channel(false);
+    tokio::spawn(async move {
+        shutdown_signal().await;
+        stop_tx.send_replace(true);
+    });
+
+    let registry = Registry::with_store(&args.maps);
     let options = ServeOptions {
         grace_period: Duration::from_secs(args.grace_period_secs),
     };
@@ -93,35 +189,50 @@ async fn serve_until_signal(args: ServeArgs) -> anyhow::Result<()> {
         listener,
         registry.clone(),
         options,
-        shutdown_signal(),
+        stopped(stop_rx.clone()),
     ));
     tracing::info!(%addr, "listening");
+    let admin = match admin_listener {
+        Some(l) => {
+            let admin_addr = l.local_addr()?;
+            tracing::info!(addr = %admin_addr, authenticated = token.is_some(), "admin listening");
+            Some(tokio::spawn(run_admin(
+                l,
+                registry.clone(),
+                token,
+                stopped(stop_rx.clone()),
+            )))
+        }
+        None => None,
+    };
 
-    let dir = args.maps.clone();
-    let loaded = tokio::task::spawn_blocking(move || load_dir(&dir)).await?;
-    for m in &loaded.maps {
-        tracing::info!(
-            model = m.model(),
-            version = m.map_version(),
-            method = m.method().kind(),
-            digest = m.digest(),
-            "map loaded"
-        );
+    let r = registry.clone();
+    let view = tokio::task::spawn_blocking(move || r.rescan()).await?;
+    if !registry.is_ready() {
+        if view.models.is_empty() {
+            tracing::warn!(dir = %args.maps.display(), "no valid map found; health stays NOT_SERVING");
+        } else {
+            tracing::warn!("some maps were rejected; health stays NOT_SERVING until every model has a valid active map");
+        }
     }
-    for e in &loaded.errors {
-        tracing::error!(error = %e, "map rejected");
-    }
-    let complete = loaded.errors.is_empty() && !loaded.maps.is_empty();
-    registry.publish(loaded.maps);
-    if complete {
-        registry.mark_ready();
-    } else if loaded.errors.is_empty() {
-        tracing::warn!(dir = %args.maps.display(), "no map files found; health stays NOT_SERVING");
-    } else {
-        tracing::warn!("some maps were rejected; health stays NOT_SERVING");
-    }
+    let watcher = spawn_store_watcher(
+        registry.clone(),
+        WatchOptions {
+            rescan_interval: Duration::from_secs(args.rescan_secs),
+            file_events: !args.no_file_events,
+            sighup: true,
+            ..WatchOptions::default()
+        },
+        stopped(stop_rx.clone()),
+    );
     server.await??;
-    tracing::info!("stopped");
+    if let Some(a) = admin {
+        a.await??;
+    }
+    watcher.await?;
+    let counts = registry.decision_counts();
+    let (accepted, deferred) = counts.iter().fold((0, 0), |(a, d), c| (a + c.2, d + c.3));
+    tracing::info!(accepted, deferred, "stopped");
     Ok(())
 }
 

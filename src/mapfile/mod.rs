@@ -65,6 +65,14 @@ pub struct MapError {
     pub problems: Vec<Problem>,
 }
 
+impl MapError {
+    /// Every problem on one line, without the file name: "field: message; field: message".
+    pub fn problems_text(&self) -> String {
+        let items: Vec<String> = self.problems.iter().map(ToString::to_string).collect();
+        items.join("; ")
+    }
+}
+
 fn source_prefix(path: &Option<PathBuf>) -> String {
     path.as_ref()
         .map_or_else(String::new, |p| format!("{}: ", p.display()))

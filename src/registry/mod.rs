@@ -1,20 +1,33 @@
-//! The live maps: one active [`CalibrationMap`] per model, held in an immutable [`Snapshot`] that
-//! is published whole and never changed in place.
+//! The live maps. For each model: the active version, the other loaded versions (which a request
+//! may pin), an optional canary and an optional shadow, all held in an immutable [`Snapshot`]
+//! that is published whole and never changed in place.
 //!
-//! Readers take the current snapshot without locking (arc-swap) and keep it for one request; a
-//! new set of maps is published by swapping in a new snapshot. Decision counters belong to a
-//! (model, map version) pair and survive swaps.
+//! Readers take the current snapshot without locking (arc-swap) and keep it for one request.
+//! Writers (the store watcher and the admin API) take the rollout state's mutex, compute the next
+//! state, and publish a new snapshot. Decision counters belong to a (model, map version) pair and
+//! survive swaps.
 
+mod rollout;
+mod route;
 mod store;
+mod watch;
 
-pub use store::{load_dir, DirLoad};
+pub use rollout::{
+    ModelView, RejectionView, RolloutError, RolloutView, VersionState, VersionView, HISTORY_LEN,
+    REJECTIONS_KEPT,
+};
+pub use route::{canary_bucket, ModelRoute, Route, ServedMap, ShadowStats};
+pub use store::{load_dir, DirLoad, StoreError, POINTER_FILE};
+pub use watch::{spawn_store_watcher, WatchOptions};
 
 use crate::mapfile::CalibrationMap;
 use arc_swap::ArcSwap;
+use rollout::Rollout;
 use std::collections::{BTreeMap, HashMap};
+use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::{Arc, Mutex};
-use tokio::sync::watch;
+use std::sync::{Arc, Mutex, MutexGuard};
+use tokio::sync::watch as latch;
 
 /// Accepted and deferred decisions of one (model, map version).
 #[derive(Debug, Default)]
@@ -44,19 +57,10 @@ impl DecisionCounters {
     }
 }
 
-/// A map being served, with the counters of its (model, version).
-#[derive(Debug)]
-pub struct ActiveMap {
-    /// The validated map.
-    pub map: CalibrationMap,
-    /// Shared with every snapshot that serves this (model, version).
-    pub counters: Arc<DecisionCounters>,
-}
-
-/// An immutable set of active maps, one per model.
+/// An immutable routing table: one [`ModelRoute`] per model.
 #[derive(Debug, Default)]
 pub struct Snapshot {
-    by_model: HashMap<String, Arc<ActiveMap>>,
+    by_model: HashMap<String, ModelRoute>,
 }
 
 /// Why a request names no usable map.
@@ -76,15 +80,24 @@ pub enum LookupError {
         /// How many models are loaded.
         loaded: usize,
     },
+    /// The request pinned a version that is not loaded.
+    UnknownVersion {
+        /// The model.
+        model: String,
+        /// The version asked for.
+        version: String,
+        /// Versions that are loaded, sorted.
+        known: Vec<String>,
+    },
 }
 
 impl Snapshot {
-    /// The active map for `model`; an empty name picks the only model when exactly one is loaded.
+    /// The route of `model`; an empty name picks the only model when exactly one is loaded.
     ///
     /// # Errors
     /// [`LookupError`] when nothing matches.
     #[inline]
-    pub fn get(&self, model: &str) -> Result<&Arc<ActiveMap>, LookupError> {
+    pub fn get(&self, model: &str) -> Result<&ModelRoute, LookupError> {
         if let Some(m) = self.by_model.get(model) {
             return Ok(m);
         }
@@ -109,9 +122,9 @@ impl Snapshot {
         })
     }
 
-    /// Every active map, sorted by model name.
-    pub fn maps(&self) -> Vec<&Arc<ActiveMap>> {
-        let mut v: Vec<_> = self.by_model.values().collect();
+    /// The active map of every model, sorted by model name.
+    pub fn maps(&self) -> Vec<&Arc<ServedMap>> {
+        let mut v: Vec<_> = self.by_model.values().map(ModelRoute::active).collect();
         v.sort_by(|a, b| a.map.model().cmp(b.map.model()));
         v
     }
@@ -122,26 +135,44 @@ impl Snapshot {
 pub struct Registry {
     /// ArcSwap: readers load the current snapshot without a lock; writers replace it whole.
     current: ArcSwap<Snapshot>,
-    /// watch: the readiness latch health reporting waits on (true once every map has loaded).
-    ready: watch::Sender<bool>,
-    /// Mutex: touched only when maps are published or counts are listed, never per request.
-    counters: Mutex<BTreeMap<(String, String), Arc<DecisionCounters>>>,
+    /// watch: the readiness latch health reporting waits on (true once the maps have loaded).
+    ready: latch::Sender<bool>,
+    /// watch: how many snapshots have been published, for whoever waits for a change.
+    generation: latch::Sender<u64>,
+    /// Mutex: the rollout state, taken by the store watcher and the admin API, never per
+    /// request. Holding it across a store scan serialises scans and admin changes.
+    rollout: Mutex<Rollout>,
 }
 
 impl Default for Registry {
     fn default() -> Self {
         Registry {
             current: ArcSwap::from_pointee(Snapshot::default()),
-            ready: watch::channel(false).0,
-            counters: Mutex::new(BTreeMap::new()),
+            ready: latch::channel(false).0,
+            generation: latch::channel(0).0,
+            rollout: Mutex::new(Rollout::new(None)),
         }
     }
 }
 
 impl Registry {
-    /// An empty, not-ready registry.
+    /// An empty, not-ready registry with no store on disk (maps arrive by [`Registry::publish`]).
     pub fn new() -> Arc<Self> {
         Arc::new(Self::default())
+    }
+
+    /// An empty, not-ready registry backed by the map store in `dir`; call
+    /// [`Registry::rescan`] (or start the watcher) to load it.
+    pub fn with_store(dir: &Path) -> Arc<Self> {
+        Arc::new(Registry {
+            rollout: Mutex::new(Rollout::new(Some(dir.to_owned()))),
+            ..Self::default()
+        })
+    }
+
+    /// The map store's directory, if there is one.
+    pub fn store_dir(&self) -> Option<PathBuf> {
+        self.lock().store_dir().map(Path::to_owned)
     }
 
     /// The current snapshot (cheap: one atomic load and a reference-count increment).
@@ -157,29 +188,128 @@ impl Registry {
         f(&guard)
     }
 
-    /// Publishes `maps` as the new set of active maps (one per model; the caller has checked
-    /// that models are distinct — a later duplicate replaces an earlier one).
+    fn lock(&self) -> MutexGuard<'_, Rollout> {
+        self.rollout.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    fn publish_from(&self, rollout: &Rollout) {
+        self.current.store(Arc::new(rollout.snapshot()));
+        self.generation.send_modify(|g| *g += 1);
+    }
+
+    /// A receiver that sees every publication of a new snapshot (the value counts them).
+    pub fn generations(&self) -> latch::Receiver<u64> {
+        self.generation.subscribe()
+    }
+
+    /// Publishes `maps` as the active versions (one per model; a later duplicate replaces an
+    /// earlier one), without a store: for embedding and tests.
     pub fn publish(&self, maps: Vec<CalibrationMap>) {
-        let mut counters = self.counters.lock().unwrap_or_else(|e| e.into_inner());
-        let mut by_model = HashMap::with_capacity(maps.len());
-        for map in maps {
-            let key = (map.model().to_owned(), map.map_version().to_owned());
-            let c = counters.entry(key).or_default().clone();
-            by_model.insert(
-                map.model().to_owned(),
-                Arc::new(ActiveMap { map, counters: c }),
-            );
+        let mut r = self.lock();
+        r.replace_all(maps);
+        self.publish_from(&r);
+    }
+
+    /// Reads the store again and publishes what changed. Releases the readiness latch once every
+    /// model seen has an active version and no unattributed file was refused.
+    ///
+    /// Blocking: reads files. Returns the view after the scan.
+    pub fn rescan(&self) -> RolloutView {
+        let mut r = self.lock();
+        if r.rescan() {
+            self.publish_from(&r);
         }
-        self.current.store(Arc::new(Snapshot { by_model }));
+        if r.ready() {
+            self.mark_ready();
+        }
+        r.view()
+    }
+
+    /// What every model serves, with versions, canary, shadow and recent rejections.
+    pub fn view(&self) -> RolloutView {
+        self.lock().view()
+    }
+
+    /// Validates `bytes` as a map, writes it into the store as `<model>/<version>.json`
+    /// atomically, rescans, and activates it when asked. Returns (model, version, digest,
+    /// written).
+    ///
+    /// # Errors
+    /// [`RolloutError`] for an invalid map, a version that exists with other content, a class
+    /// count that differs from the active version's, or a store that cannot be written.
+    pub fn push(
+        &self,
+        bytes: &[u8],
+        activate: bool,
+    ) -> Result<(String, String, String, bool), RolloutError> {
+        let mut r = self.lock();
+        let out = r.push(bytes, activate);
+        self.publish_from(&r);
+        if r.ready() {
+            self.mark_ready();
+        }
+        out
+    }
+
+    /// Makes `version` the active version of `model` (persisted in the pointer file when there
+    /// is a store).
+    ///
+    /// # Errors
+    /// [`RolloutError`] when the model or version is not loaded or the pointer cannot be
+    /// written.
+    pub fn activate(&self, model: &str, version: &str) -> Result<ModelView, RolloutError> {
+        self.change(model, |r| r.activate(model, version))
+    }
+
+    /// Makes the previously active version of `model` active again.
+    ///
+    /// # Errors
+    /// [`RolloutError`] when there is no earlier version still loaded.
+    pub fn rollback(&self, model: &str) -> Result<ModelView, RolloutError> {
+        self.change(model, |r| r.rollback(model))
+    }
+
+    /// Sends `fraction` of request ids for `model` to `version`; an empty version clears it.
+    ///
+    /// # Errors
+    /// [`RolloutError`] for an unknown model or version, the active version, or a fraction
+    /// outside (0, 1].
+    pub fn set_canary(
+        &self,
+        model: &str,
+        version: &str,
+        fraction: f64,
+    ) -> Result<ModelView, RolloutError> {
+        self.change(model, |r| r.set_canary(model, version, fraction))
+    }
+
+    /// Computes `version` beside the active one for every request of `model`; an empty version
+    /// clears it.
+    ///
+    /// # Errors
+    /// [`RolloutError`] for an unknown model or version, or the active version.
+    pub fn set_shadow(&self, model: &str, version: &str) -> Result<ModelView, RolloutError> {
+        self.change(model, |r| r.set_shadow(model, version))
+    }
+
+    fn change(
+        &self,
+        model: &str,
+        f: impl FnOnce(&mut Rollout) -> Result<(), RolloutError>,
+    ) -> Result<ModelView, RolloutError> {
+        let mut r = self.lock();
+        f(&mut r)?;
+        self.publish_from(&r);
+        r.model_view(model)
     }
 
     /// Releases the readiness latch.
     pub fn mark_ready(&self) {
-        self.ready.send_replace(true);
+        self.ready.send_if_modified(|r| !std::mem::replace(r, true));
     }
 
     /// A receiver that sees the readiness latch change.
-    pub fn readiness(&self) -> watch::Receiver<bool> {
+    pub fn readiness(&self) -> latch::Receiver<bool> {
         self.ready.subscribe()
     }
 
@@ -188,15 +318,12 @@ impl Registry {
         *self.ready.borrow()
     }
 
-    /// (model, map version, accepted, deferred) for every pair seen since start, sorted.
+    /// (model, map version, accepted, deferred) for every pair served since start, sorted.
     pub fn decision_counts(&self) -> Vec<(String, String, u64, u64)> {
-        let counters = self.counters.lock().unwrap_or_else(|e| e.into_inner());
+        let counters: BTreeMap<(String, String), (u64, u64)> = self.lock().counters();
         counters
-            .iter()
-            .map(|((m, v), c)| {
-                let (a, d) = c.get();
-                (m.clone(), v.clone(), a, d)
-            })
+            .into_iter()
+            .map(|((m, v), (a, d))| (m, v, a, d))
             .collect()
     }
 }

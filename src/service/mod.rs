@@ -1,8 +1,11 @@
-//! The gRPC data plane: the `candor.v1.Calibrator` service.
+//! The gRPC services: the data plane (`candor.v1.Calibrator`) and the admin plane
+//! (`candor.v1.MapControl`).
 
+mod admin;
 mod row;
 mod status;
 
+pub use admin::{check_token, model_status, AdminToken, MapControlService, MAX_PUSH_BYTES};
 pub use row::{answer, RowError};
 
 use crate::proto::v1::calibrator_server::Calibrator;
@@ -12,8 +15,11 @@ use crate::proto::v1::{
     GetDecisionCountsResponse, ListMapsRequest, ListMapsResponse, MapInfo,
 };
 use crate::registry::{Registry, Snapshot};
+use std::future::Future;
 use std::pin::Pin;
 use std::sync::Arc;
+use std::task::{Context, Poll};
+use tokio::sync::watch;
 use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
 
@@ -24,12 +30,47 @@ pub const MAX_BATCH_ROWS: usize = 100_000;
 #[derive(Debug, Clone)]
 pub struct CalibratorService {
     registry: Arc<Registry>,
+    /// watch: turns true when shutdown begins, so open streams stop taking new rows.
+    draining: watch::Receiver<bool>,
 }
 
 impl CalibratorService {
-    /// A service answering from `registry`.
-    pub fn new(registry: Arc<Registry>) -> Self {
-        CalibratorService { registry }
+    /// A service answering from `registry`; open streams end with UNAVAILABLE once `draining`
+    /// turns true.
+    pub fn new(registry: Arc<Registry>, draining: watch::Receiver<bool>) -> Self {
+        CalibratorService { registry, draining }
+    }
+}
+
+/// A response stream that ends with UNAVAILABLE once shutdown begins: a row already read is
+/// answered first, no row is read after.
+struct Draining<S> {
+    rows: S,
+    drained: Pin<Box<dyn Future<Output = ()> + Send>>,
+    done: bool,
+}
+
+impl<S> Stream for Draining<S>
+where
+    S: Stream<Item = Result<CalibrateResult, Status>> + Unpin,
+{
+    type Item = Result<CalibrateResult, Status>;
+
+    fn poll_next(mut self: Pin<&mut Self>, cx: &mut Context<'_>) -> Poll<Option<Self::Item>> {
+        if self.done {
+            return Poll::Ready(None);
+        }
+        if self.drained.as_mut().poll(cx).is_ready() {
+            self.done = true;
+            return Poll::Ready(Some(Err(Status::unavailable(
+                "the sidecar is shutting down; open a new stream elsewhere",
+            ))));
+        }
+        let next = Pin::new(&mut self.rows).poll_next(cx);
+        if let Poll::Ready(None | Some(Err(_))) = &next {
+            self.done = true;
+        }
+        next
     }
 }
 
@@ -88,13 +129,22 @@ impl Calibrator for CalibratorService {
     ) -> Result<Response<Self::CalibrateStreamStream>, Status> {
         let registry = self.registry.clone();
         let mut index = 0usize;
-        let out = request.into_inner().map(move |item| {
+        let rows = request.into_inner().map(move |item| {
             let req = item?;
             let r = registry.with_snapshot(|s| result_of(s, &req, index));
             index += 1;
             Ok(r)
         });
-        Ok(Response::new(Box::pin(out)))
+        let mut draining = self.draining.clone();
+        let drained = Box::pin(async move {
+            // An error means the sender is gone: the server is stopping anyway.
+            let _ = draining.wait_for(|d| *d).await;
+        });
+        Ok(Response::new(Box::pin(Draining {
+            rows,
+            drained,
+            done: false,
+        })))
     }
 
     async fn list_maps(

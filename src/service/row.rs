@@ -4,8 +4,10 @@
 
 use crate::decision::Decision;
 use crate::method::Workspace;
-use crate::proto::v1::{CalibrateRequest, CalibrateResponse, Decision as PbDecision};
-use crate::registry::{LookupError, Snapshot};
+use crate::proto::v1::{
+    CalibrateRequest, CalibrateResponse, Decision as PbDecision, Route as PbRoute,
+};
+use crate::registry::{LookupError, Route, Snapshot};
 use std::cell::RefCell;
 
 thread_local! {
@@ -53,6 +55,15 @@ impl std::fmt::Display for RowError {
             RowError::Lookup(LookupError::ModelRequired { loaded }) => {
                 write!(f, "model is empty but {loaded} models are loaded; name one")
             }
+            RowError::Lookup(LookupError::UnknownVersion {
+                model,
+                version,
+                known,
+            }) => write!(
+                f,
+                "model {model:?} has no loaded map version {version:?} (loaded: {})",
+                known.join(", ")
+            ),
             RowError::EmptyLogits { expected } => {
                 write!(f, "logits is empty; expected {expected} values")
             }
@@ -66,13 +77,19 @@ impl std::fmt::Display for RowError {
     }
 }
 
-/// Calibrates one request against `snapshot`, counting the decision.
+/// Calibrates one request against `snapshot`, counting the decision. The version is the pinned
+/// one, else the canary for its share of request ids, else the active one; a shadow version, if
+/// set, is computed beside the active one and only its disagreement is counted.
 ///
 /// # Errors
-/// [`RowError`] for an unknown model, missing maps or bad logits; nothing is counted then.
+/// [`RowError`] for an unknown model or version, missing maps or bad logits; nothing is counted
+/// then.
 pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateResponse, RowError> {
-    let active = snapshot.get(&req.model).map_err(RowError::Lookup)?;
-    let map = &active.map;
+    let route = snapshot.get(&req.model).map_err(RowError::Lookup)?;
+    let (served, how) = route
+        .pick(&req.request_id, &req.map_version)
+        .map_err(RowError::Lookup)?;
+    let map = &served.map;
     let expected = map.input_len();
     if req.logits.is_empty() {
         return Err(RowError::EmptyLogits { expected });
@@ -91,6 +108,7 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
     }
     let k = map.classes();
     let top_k = (req.top_k as usize).min(k);
+    let shadow = route.shadow().filter(|_| how == Route::Active);
     let mut resp = WORKSPACE.with_borrow_mut(|ws| {
         let q = ws.apply(map.method(), map.input(), k, &req.logits);
         let predicted = crate::numeric::argmax(q);
@@ -100,13 +118,23 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
         } else {
             top_entries(q, top_k)
         };
+        let accept = map.policy().decide(predicted, confidence) == Decision::Accept;
+        if let Some((candidate, stats)) = shadow {
+            // The shadow shares the active version's shape (the rollout rules ensure it).
+            let m = &candidate.map;
+            let qs = ws.apply(m.method(), m.input(), m.classes(), &req.logits);
+            let ps = crate::numeric::argmax(qs);
+            let shadow_accept = m.policy().decide(ps, qs[ps]) == Decision::Accept;
+            stats.record(accept, shadow_accept, qs[ps] - confidence);
+        }
         CalibrateResponse {
             probabilities,
             predicted_class: predicted as u32,
             confidence: confidence as f32,
-            decision: match map.policy().decide(predicted, confidence) {
-                Decision::Accept => PbDecision::Accept as i32,
-                Decision::Defer => PbDecision::Defer as i32,
+            decision: if accept {
+                PbDecision::Accept as i32
+            } else {
+                PbDecision::Defer as i32
             },
             threshold: map
                 .policy()
@@ -115,9 +143,14 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
             map_version: String::new(),
             request_id: String::new(),
             classes,
+            route: match how {
+                Route::Active => PbRoute::Active as i32,
+                Route::Canary => PbRoute::Canary as i32,
+                Route::Pinned => PbRoute::Pinned as i32,
+            },
         }
     });
-    active
+    served
         .counters
         .record(resp.decision == PbDecision::Accept as i32);
     resp.map_version = map.map_version().to_owned();

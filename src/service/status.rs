@@ -3,7 +3,7 @@
 //! | error | code |
 //! |---|---|
 //! | empty, wrong-length, NaN or infinite logits; empty model with several loaded | INVALID_ARGUMENT |
-//! | unknown model | NOT_FOUND |
+//! | unknown model; pinned map version not loaded | NOT_FOUND |
 //! | no map loaded yet | UNAVAILABLE |
 
 use super::row::RowError;
@@ -14,7 +14,9 @@ use tonic::{Code, Status};
 pub fn code(e: &RowError) -> Code {
     match e {
         RowError::Lookup(LookupError::NoMaps) => Code::Unavailable,
-        RowError::Lookup(LookupError::UnknownModel { .. }) => Code::NotFound,
+        RowError::Lookup(LookupError::UnknownModel { .. } | LookupError::UnknownVersion { .. }) => {
+            Code::NotFound
+        }
         RowError::Lookup(LookupError::ModelRequired { .. })
         | RowError::EmptyLogits { .. }
         | RowError::LogitsLen { .. }
@@ -36,4 +38,29 @@ pub fn row_error(e: &RowError, index: usize, request_id: &str) -> crate::proto::
         request_id: request_id.to_owned(),
         index: index as u64,
     }
+}
+
+/// The gRPC status for a refused admin change.
+///
+/// | error | code |
+/// |---|---|
+/// | invalid map, canary fraction outside (0, 1] | INVALID_ARGUMENT |
+/// | unknown model or version | NOT_FOUND |
+/// | version exists with other content | ALREADY_EXISTS |
+/// | shape differs from the active version, no history, canary/shadow = active, no store, store changed meanwhile | FAILED_PRECONDITION |
+/// | store could not be written | UNAVAILABLE |
+pub fn rollout_status(e: &crate::registry::RolloutError) -> Status {
+    use crate::registry::RolloutError as E;
+    let code = match e {
+        E::InvalidMap(_) | E::BadFraction { .. } => Code::InvalidArgument,
+        E::UnknownModel { .. } | E::UnknownVersion { .. } => Code::NotFound,
+        E::VersionConflict { .. } => Code::AlreadyExists,
+        E::ShapeMismatch { .. }
+        | E::NoStore
+        | E::NoHistory { .. }
+        | E::IsActive { .. }
+        | E::NotHonoured { .. } => Code::FailedPrecondition,
+        E::Store(_) => Code::Unavailable,
+    };
+    Status::new(code, e.to_string())
 }
