@@ -74,9 +74,13 @@ pub struct Sidecar {
 impl Sidecar {
     /// Starts a server on 127.0.0.1:0 with an empty, not-ready registry.
     pub async fn start() -> Sidecar {
+        Self::serving(Registry::new()).await
+    }
+
+    /// Starts a server on 127.0.0.1:0 answering from `registry`.
+    pub async fn serving(registry: Arc<Registry>) -> Sidecar {
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let addr = listener.local_addr().unwrap();
-        let registry = Registry::new();
         let (tx, rx) = oneshot::channel::<()>();
         let handle = tokio::spawn(run(
             listener,
@@ -128,4 +132,108 @@ impl Sidecar {
         self.begin_stop();
         self.handle.await.unwrap().unwrap();
     }
+}
+
+/// The admin plane of a registry, running in this process on 127.0.0.1:0.
+pub struct AdminPlane {
+    pub addr: SocketAddr,
+    stop: Option<oneshot::Sender<()>>,
+    handle: JoinHandle<Result<(), candor::server::ServeError>>,
+}
+
+impl AdminPlane {
+    /// Starts MapControl for `registry`, requiring `token` when given.
+    pub async fn start(registry: Arc<Registry>, token: Option<&str>) -> AdminPlane {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let (tx, rx) = oneshot::channel::<()>();
+        let token = token.map(|t| candor::service::AdminToken::try_new(t).unwrap());
+        let handle = tokio::spawn(candor::server::run_admin(
+            listener,
+            registry,
+            token,
+            async {
+                let _ = rx.await;
+            },
+        ));
+        AdminPlane {
+            addr,
+            stop: Some(tx),
+            handle,
+        }
+    }
+
+    /// A connected MapControl client.
+    pub async fn client(&self) -> candor::proto::v1::map_control_client::MapControlClient<Channel> {
+        candor::proto::v1::map_control_client::MapControlClient::connect(format!(
+            "http://{}",
+            self.addr
+        ))
+        .await
+        .unwrap()
+    }
+
+    /// Stops the admin plane and waits for it.
+    pub async fn stop(mut self) {
+        if let Some(tx) = self.stop.take() {
+            let _ = tx.send(());
+        }
+        self.handle.await.unwrap().unwrap();
+    }
+}
+
+/// A temperature map of `model` with K classes, version `version`, threshold 0.6.
+pub fn versioned_map(model: &str, version: &str, classes: usize, t: f64) -> CalibrationMap {
+    CalibrationMap::from_parts(MapParts {
+        model: model.into(),
+        map_version: version.into(),
+        classes,
+        class_names: None,
+        input: InputForm::Logits,
+        method: Method::Temperature(Temperature::try_new(t, "t").unwrap()),
+        policy: DecisionPolicy::global(0.6),
+        provenance: serde_json::Map::new(),
+    })
+    .expect("test map is valid")
+}
+
+/// Writes `bytes` to `path` the way a careful tool does: a hidden temporary file, renamed over.
+pub fn write_atomically(path: &Path, bytes: &[u8]) {
+    std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+    let tmp = path.with_file_name(format!(
+        ".tmp-{}",
+        path.file_name().unwrap().to_string_lossy()
+    ));
+    std::fs::write(&tmp, bytes).unwrap();
+    std::fs::rename(&tmp, path).unwrap();
+}
+
+/// Waits (bounded) until `registry` has published a snapshot in which `model`'s active version
+/// is `version`; returns false on timeout.
+pub async fn wait_for_active(
+    registry: &Registry,
+    model: &str,
+    version: &str,
+    timeout: std::time::Duration,
+) -> bool {
+    let mut gens = registry.generations();
+    let check = || {
+        registry.with_snapshot(|s| {
+            s.get(model)
+                .is_ok_and(|r| r.active().map.map_version() == version)
+        })
+    };
+    tokio::time::timeout(timeout, async {
+        loop {
+            if check() {
+                return;
+            }
+            if gens.changed().await.is_err() {
+                return;
+            }
+        }
+    })
+    .await
+    .is_ok()
+        && check()
 }

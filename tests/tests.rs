@@ -4,5 +4,7 @@ mod cli;
 mod conformance;
 mod offline;
 mod report;
+mod rollout;
+mod rollout_load;
 mod serve;
 mod support;

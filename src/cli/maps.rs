@@ -109,12 +109,26 @@ pub(super) fn run(args: &MapsArgs) -> anyhow::Result<ExitCode> {
     runtime.block_on(drive(args))
 }
 
-fn token(args: &MapsArgs) -> anyhow::Result<Option<MetadataValue<tonic::metadata::Ascii>>> {
-    let text = match (&args.admin_token_file, &args.admin_token) {
+/// The admin token's text from a file or the value itself (the file wins), if either is set.
+pub(super) fn admin_token_text(
+    file: Option<&std::path::Path>,
+    value: Option<&str>,
+) -> anyhow::Result<Option<String>> {
+    match (file, value) {
         (Some(p), _) => std::fs::read_to_string(p)
-            .with_context(|| format!("reading --admin-token-file {}", p.display()))?,
-        (None, Some(t)) => t.clone(),
-        (None, None) => return Ok(None),
+            .map(Some)
+            .with_context(|| format!("reading --admin-token-file {}", p.display())),
+        (None, v) => Ok(v.map(str::to_owned)),
+    }
+}
+
+fn token(args: &MapsArgs) -> anyhow::Result<Option<MetadataValue<tonic::metadata::Ascii>>> {
+    let Some(text) = admin_token_text(
+        args.admin_token_file.as_deref(),
+        args.admin_token.as_deref(),
+    )?
+    else {
+        return Ok(None);
     };
     let value = format!("Bearer {}", text.trim());
     Ok(Some(value.parse().context(

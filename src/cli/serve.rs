@@ -145,15 +145,12 @@ pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
 }
 
 fn admin_token(args: &ServeArgs) -> anyhow::Result<Option<AdminToken>> {
-    let text = match (&args.admin_token_file, &args.admin_token) {
-        (Some(path), _) => std::fs::read_to_string(path)
-            .with_context(|| format!("reading --admin-token-file {}", path.display()))?,
-        (None, Some(t)) => t.clone(),
-        (None, None) => return Ok(None),
-    };
-    AdminToken::try_new(&text)
-        .map(Some)
-        .map_err(|e| anyhow::anyhow!("{e}"))
+    let text = super::maps::admin_token_text(
+        args.admin_token_file.as_deref(),
+        args.admin_token.as_deref(),
+    )?;
+    text.map(|t| AdminToken::try_new(&t).map_err(|e| anyhow::anyhow!("{e}")))
+        .transpose()
 }
 
 /// A future that completes once `stop` turns true (or its sender is gone).
