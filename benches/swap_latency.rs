@@ -115,7 +115,7 @@ async fn phase(
         let i = *next_version;
         *next_version += 1;
         let version = format!("v{i}");
-        if i % 2 == 0 {
+        if i.is_multiple_of(2) {
             write_atomically(
                 &dir.join(MODEL).join(format!("{version}.json")),
                 map(&version, 1.0 + (i % 13) as f64 * 0.1)
@@ -211,7 +211,7 @@ async fn pickups(file_events: bool, rounds: usize) -> Vec<f64> {
 
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
-    let (rounds, length) = if quick {
+    let (rounds, length): (usize, Duration) = if quick {
         (2, Duration::from_secs(2))
     } else {
         (4, Duration::from_secs(4))
@@ -258,7 +258,7 @@ fn main() {
         phase(addr, &mut admin, &d, &registry, false, Duration::from_secs(1), &mut next).await;
         for round in 0..rounds {
             // Alternate which kind goes first, so drift in machine load does not favour one.
-            for swap in if round % 2 == 0 { [false, true] } else { [true, false] } {
+            for swap in if round.is_multiple_of(2) { [false, true] } else { [true, false] } {
                 let (p50, p99, swaps) =
                     phase(addr, &mut admin, &d, &registry, swap, length, &mut next).await;
                 println!(
