@@ -10,9 +10,14 @@
 //! - [`eval`] — calibration quality: ECE and friends, NLL, Brier, AURC, bootstrap, drift (pure).
 //! - [`dataset`] — reading labelled logits from .npy, CSV and JSON Lines; writing probabilities.
 //! - [`mapfile`] — the map file: reading with every problem named, writing sealed with a digest.
-//! - [`registry`] — the live maps as immutable snapshots swapped whole, plus decision counters.
-//! - [`service`] — the gRPC handlers and the one mapping of errors to status codes.
-//! - [`server`] — running the sidecar: data plane, health, reflection, graceful shutdown.
+//! - [`registry`] — the live maps as immutable snapshots swapped whole: the map store, its
+//!   watcher, versions, canary, shadow, and decision counters.
+//! - [`service`] — the gRPC handlers (data plane and admin plane) and the one mapping of errors
+//!   to status codes.
+//! - [`server`] — running the sidecar: data plane, admin plane, health, reflection, graceful
+//!   shutdown.
+//! - [`telemetry`] — request counters and latency histogram; Prometheus exposition, `/ready`,
+//!   `/live`.
 //! - [`proto`] — generated protobuf code.
 //! - [`report`] — the reviewer's HTML report: charts, tables and the policy evidence (pure).
 //! - [`demo`] — the demo scenario and its deterministic data generator.
@@ -34,3 +39,4 @@ pub mod report;
 pub mod server;
 pub mod service;
 pub mod stats;
+pub mod telemetry;

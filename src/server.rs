@@ -10,6 +10,7 @@ use crate::registry::Registry;
 use crate::service::{
     check_token, AdminToken, CalibratorService, MapControlService, MAX_PUSH_BYTES,
 };
+use crate::telemetry::RpcStats;
 use std::future::Future;
 use std::sync::Arc;
 use std::time::Duration;
@@ -25,12 +26,15 @@ pub const SERVICE_NAME: &str = "candor.v1.Calibrator";
 pub struct ServeOptions {
     /// How long in-flight requests may take to finish after shutdown begins.
     pub grace_period: Duration,
+    /// Request counters the data plane keeps (shared with telemetry).
+    pub stats: Arc<RpcStats>,
 }
 
 impl Default for ServeOptions {
     fn default() -> Self {
         ServeOptions {
             grace_period: Duration::from_secs(10),
+            stats: Arc::default(),
         }
     }
 }
@@ -103,7 +107,9 @@ pub async fn run(
         .add_service(health)
         .add_service(reflection)
         .add_service(CalibratorServer::new(CalibratorService::new(
-            registry, draining,
+            registry,
+            draining,
+            options.stats.clone(),
         )))
         .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
     tokio::pin!(server);

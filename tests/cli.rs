@@ -1,10 +1,10 @@
 //! The real `candor` binary.
 
-use crate::support::{candor, repo, temperature_map};
+use crate::support::{candor, repo, temperature_map, terminate};
 use candor::proto::v1::calibrator_client::CalibratorClient;
 use candor::proto::v1::CalibrateRequest;
 use std::io::{BufRead, BufReader};
-use std::process::{Command, Stdio};
+use std::process::Stdio;
 use tonic_health::pb::health_check_response::ServingStatus;
 use tonic_health::pb::health_client::HealthClient;
 use tonic_health::pb::HealthCheckRequest;
@@ -186,17 +186,7 @@ async fn serve_starts_turns_healthy_answers_and_exits_cleanly_on_sigterm() {
         .into_inner();
     assert_eq!(r.predicted_class, 0);
     drop(watch);
-    let status = Command::new("kill")
-        .args(["-TERM", &child.id().to_string()])
-        .status()
-        .unwrap();
-    assert!(status.success());
-    // Wait off the runtime so the client's connection task can answer the server's GOAWAY.
-    let exit = tokio::task::spawn_blocking(move || child.wait())
-        .await
-        .unwrap()
-        .unwrap();
-    assert_eq!(exit.code(), Some(0));
+    assert_eq!(terminate(child).await, Some(0));
     let logs = drain.join().unwrap().join("\n");
     assert!(logs.contains("SIGTERM received"), "{logs}");
 }

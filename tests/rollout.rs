@@ -327,17 +327,38 @@ async fn the_admin_plane_requires_its_token_and_refuses_bad_maps_with_the_docume
     admin.stop().await;
 }
 
-/// Starts `candor serve` on ephemeral ports with `extra` arguments; returns the child, the data
-/// and admin addresses, and a thread collecting the rest of its log.
-pub fn spawn_serve(
-    maps: &Path,
-    extra: &[&str],
-) -> (
-    std::process::Child,
-    String,
-    String,
-    std::thread::JoinHandle<Vec<String>>,
-) {
+/// A `candor serve` process started by a test.
+pub struct Served {
+    pub child: std::process::Child,
+    /// Data-plane address.
+    pub data: String,
+    /// Admin-plane address.
+    pub admin: String,
+    /// Every log line, returned when the process has exited.
+    pub logs: std::thread::JoinHandle<Vec<String>>,
+}
+
+/// The address a JSON log line with `message` reports, among `lines`.
+pub fn logged_addr(lines: &[String], message: &str) -> Option<String> {
+    lines.iter().find_map(|l| {
+        let v: serde_json::Value = serde_json::from_str(l).ok()?;
+        (v["fields"]["message"] == message)
+            .then(|| v["fields"]["addr"].as_str().map(str::to_owned))?
+    })
+}
+
+/// Starts `candor serve` on ephemeral ports with `extra` arguments; returns once the data and
+/// admin listeners are bound (lines logged before that are in `early`).
+pub fn spawn_serve_logged(maps: &Path, extra: &[&str]) -> (Served, Vec<String>) {
+    spawn(maps, extra)
+}
+
+/// [`spawn_serve_logged`] without the early lines.
+pub fn spawn_serve(maps: &Path, extra: &[&str]) -> Served {
+    spawn(maps, extra).0
+}
+
+fn spawn(maps: &Path, extra: &[&str]) -> (Served, Vec<String>) {
     let mut child = candor()
         .args([
             "serve",
@@ -353,22 +374,28 @@ pub fn spawn_serve(
         .spawn()
         .unwrap();
     let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
-    let (mut data, mut admin) = (None, None);
-    while data.is_none() || admin.is_none() {
+    let mut early = Vec::new();
+    while logged_addr(&early, "listening").is_none()
+        || logged_addr(&early, "admin listening").is_none()
+    {
         let line = lines
             .next()
             .expect("serve exited before listening")
             .unwrap();
-        let v: serde_json::Value = serde_json::from_str(&line).unwrap();
-        let addr = v["fields"]["addr"].as_str().map(str::to_owned);
-        match v["fields"]["message"].as_str() {
-            Some("listening") => data = addr,
-            Some("admin listening") => admin = addr,
-            _ => {}
-        }
+        early.push(line);
     }
-    let rest = std::thread::spawn(move || lines.map_while(Result::ok).collect::<Vec<_>>());
-    (child, data.unwrap(), admin.unwrap(), rest)
+    let mut seen = early.clone();
+    let logs = std::thread::spawn(move || {
+        seen.extend(lines.map_while(Result::ok));
+        seen
+    });
+    let served = Served {
+        child,
+        data: logged_addr(&early, "listening").unwrap(),
+        admin: logged_addr(&early, "admin listening").unwrap(),
+        logs,
+    };
+    (served, early)
 }
 
 fn maps_cmd(admin: &str, token_file: &Path, args: &[&str]) -> std::process::Output {
@@ -393,8 +420,12 @@ fn candor_maps_pushes_activates_and_rolls_back_against_a_running_sidecar() {
     std::fs::write(&token, "s3cret-admin\n").unwrap();
     let v2 = dir.path().join("v2.json");
     std::fs::write(&v2, versioned_map("triage", "v2", 3, 1.5).to_json()).unwrap();
-    let (mut child, _data, admin, rest) =
-        spawn_serve(&store, &["--admin-token-file", token.to_str().unwrap()]);
+    let Served {
+        mut child,
+        admin,
+        logs: rest,
+        ..
+    } = spawn_serve(&store, &["--admin-token-file", token.to_str().unwrap()]);
 
     let out = maps_cmd(&admin, &token, &["push", v2.to_str().unwrap()]);
     let text = String::from_utf8_lossy(&out.stdout);

@@ -1,8 +1,11 @@
 //! Rollout under load: many clients on unary and streaming calls while maps are swapped through
 //! the file store and the admin plane (invalid maps included), and SIGTERM under load.
 
-use crate::rollout::spawn_serve;
-use crate::support::{versioned_map, wait_for_active, write_atomically, AdminPlane, Sidecar};
+use crate::rollout::{spawn_serve, Served};
+use crate::support::{
+    connect_when_serving, signal, versioned_map, wait_for_active, write_atomically, AdminPlane,
+    Sidecar,
+};
 use candor::mapfile::CalibrationMap;
 use candor::method::Workspace;
 use candor::proto::v1::calibrate_result::Outcome;
@@ -365,24 +368,13 @@ async fn sigterm_under_load_loses_no_accepted_request() {
         &store.join(MODEL).join("v0.json"),
         version_map(0).to_json().as_bytes(),
     );
-    let (mut child, data, _admin, rest) = spawn_serve(&store, &["--grace-period-secs", "5"]);
-    let channel = Channel::from_shared(format!("http://{data}"))
-        .unwrap()
-        .connect()
-        .await
-        .unwrap();
-    let mut health = tonic_health::pb::health_client::HealthClient::new(channel);
-    let mut watch = health
-        .watch(tonic_health::pb::HealthCheckRequest {
-            service: "candor.v1.Calibrator".into(),
-        })
-        .await
-        .unwrap()
-        .into_inner();
-    while watch.message().await.unwrap().unwrap().status
-        != tonic_health::pb::health_check_response::ServingStatus::Serving as i32
-    {}
-    drop(watch);
+    let Served {
+        mut child,
+        data,
+        logs: rest,
+        ..
+    } = spawn_serve(&store, &["--grace-period-secs", "5"]);
+    drop(connect_when_serving(&data).await);
 
     let ok = Arc::new(AtomicU64::new(0));
     let mut clients = Vec::new();
@@ -406,11 +398,7 @@ async fn sigterm_under_load_loses_no_accepted_request() {
         assert!(Instant::now() < deadline, "the load never built up");
         progress.tick().await;
     }
-    let status = std::process::Command::new("kill")
-        .args(["-TERM", &child.id().to_string()])
-        .status()
-        .unwrap();
-    assert!(status.success());
+    signal(&child, "-TERM");
     let mut answered = 0;
     for c in clients {
         let (n, code) = tokio::time::timeout(Duration::from_secs(30), c)

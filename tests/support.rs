@@ -237,3 +237,76 @@ pub async fn wait_for_active(
     .is_ok()
         && check()
 }
+
+/// A plain HTTP/1.1 GET over loopback: (status code, body).
+pub fn http_get(addr: &str, path: &str) -> (u16, String) {
+    use std::io::{Read, Write};
+    let mut s = std::net::TcpStream::connect(addr).unwrap();
+    write!(
+        s,
+        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
+    )
+    .unwrap();
+    let mut text = String::new();
+    s.read_to_string(&mut text).unwrap();
+    let status = text
+        .split_whitespace()
+        .nth(1)
+        .and_then(|c| c.parse().ok())
+        .unwrap_or(0);
+    let body = text
+        .split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_owned())
+        .unwrap_or_default();
+    (status, body)
+}
+
+/// The value of one series in a Prometheus text exposition, by its exact name and labels as
+/// written (e.g. `candor_requests_total{model="m",map_version="v1",decision="accept"}`).
+pub fn series(exposition: &str, name_and_labels: &str) -> Option<f64> {
+    exposition.lines().find_map(|l| {
+        let (key, value) = l.rsplit_once(' ')?;
+        (key == name_and_labels).then(|| value.parse().ok())?
+    })
+}
+
+/// Connects to `addr` and waits until its health service reports the data plane SERVING
+/// (event-driven: a health Watch stream, no polling).
+pub async fn connect_when_serving(addr: &str) -> Channel {
+    use tonic_health::pb::health_check_response::ServingStatus;
+    let channel = Channel::from_shared(format!("http://{addr}"))
+        .unwrap()
+        .connect()
+        .await
+        .unwrap();
+    let mut health = tonic_health::pb::health_client::HealthClient::new(channel.clone());
+    let mut watch = health
+        .watch(tonic_health::pb::HealthCheckRequest {
+            service: "candor.v1.Calibrator".into(),
+        })
+        .await
+        .unwrap()
+        .into_inner();
+    while watch.message().await.unwrap().unwrap().status != ServingStatus::Serving as i32 {}
+    channel
+}
+
+/// Sends `signal` (e.g. "-TERM") to a child process.
+pub fn signal(child: &std::process::Child, signal: &str) {
+    let status = Command::new("kill")
+        .args([signal, &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(status.success());
+}
+
+/// Sends SIGTERM and waits, off the runtime, for the exit code.
+pub async fn terminate(mut child: std::process::Child) -> Option<i32> {
+    signal(&child, "-TERM");
+    // Wait off the runtime so the client's connection task can answer the server's GOAWAY.
+    tokio::task::spawn_blocking(move || child.wait())
+        .await
+        .unwrap()
+        .unwrap()
+        .code()
+}

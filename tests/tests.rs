@@ -8,3 +8,4 @@ mod rollout;
 mod rollout_load;
 mod serve;
 mod support;
+mod telemetry;

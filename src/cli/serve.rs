@@ -1,12 +1,14 @@
 //! `candor serve`: configuration parsed once, then the sidecar runs until SIGTERM or SIGINT.
 
-use crate::registry::{spawn_store_watcher, Registry, WatchOptions};
+use crate::registry::{spawn_store_watcher, Registry, RegistryOptions, WatchOptions};
 use crate::server::{run as serve, run_admin, ServeOptions};
 use crate::service::AdminToken;
+use crate::telemetry::{run_telemetry, RpcStats, Telemetry};
 use anyhow::Context;
 use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::process::ExitCode;
+use std::sync::Arc;
 use std::time::Duration;
 use tokio::sync::watch;
 
@@ -36,9 +38,29 @@ pub struct ServeArgs {
         env = "CANDOR_ADMIN_LISTEN",
         default_value = "127.0.0.1:50552",
         value_name = "ADDR|off",
-        value_parser = parse_admin_listen
+        value_parser = parse_listen
     )]
-    admin_listen: AdminListen,
+    admin_listen: Listen,
+    /// Address of the telemetry listener (HTTP: /metrics in the Prometheus text format, /ready,
+    /// /live), or "off".
+    #[arg(
+        long,
+        env = "CANDOR_TELEMETRY_LISTEN",
+        default_value = "off",
+        value_name = "ADDR|off",
+        value_parser = parse_listen
+    )]
+    telemetry_listen: Listen,
+    /// Share of accepted items marked `audit = true` for a person to check as well, chosen from a
+    /// hash of the request id; in [0, 1].
+    #[arg(
+        long,
+        env = "CANDOR_AUDIT_RATE",
+        default_value_t = 0.0,
+        value_name = "SHARE",
+        value_parser = parse_share
+    )]
+    audit_rate: f64,
     /// File holding the admin bearer token (surrounding whitespace ignored).
     #[arg(long, env = "CANDOR_ADMIN_TOKEN_FILE", value_name = "PATH")]
     admin_token_file: Option<PathBuf>,
@@ -81,21 +103,29 @@ pub struct ServeArgs {
     log: String,
 }
 
-/// Where the admin plane listens.
+fn parse_share(s: &str) -> Result<f64, String> {
+    match s.parse::<f64>() {
+        Ok(x) if (0.0..=1.0).contains(&x) => Ok(x),
+        Ok(x) => Err(format!("must lie in [0, 1], got {x}")),
+        Err(e) => Err(format!("{s:?} is not a number: {e}")),
+    }
+}
+
+/// Where an optional listener (admin, telemetry) listens.
 #[derive(Debug, Clone, Copy)]
-enum AdminListen {
-    /// No admin listener.
+enum Listen {
+    /// No listener.
     Off,
     /// This address.
     On(SocketAddr),
 }
 
-fn parse_admin_listen(s: &str) -> Result<AdminListen, String> {
+fn parse_listen(s: &str) -> Result<Listen, String> {
     if s == "off" {
-        return Ok(AdminListen::Off);
+        return Ok(Listen::Off);
     }
     s.parse()
-        .map(AdminListen::On)
+        .map(Listen::On)
         .map_err(|e| format!("{s:?} is neither an address nor \"off\": {e}"))
 }
 
@@ -129,7 +159,7 @@ pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
         anyhow::bail!("--maps {}: not a directory", args.maps.display());
     }
     let token = admin_token(&args)?;
-    if let (AdminListen::On(addr), None) = (args.admin_listen, &token) {
+    if let (Listen::On(addr), None) = (args.admin_listen, &token) {
         anyhow::ensure!(
             addr.ip().is_loopback(),
             "--admin-listen {addr} is not a loopback address and no admin token is set; set \
@@ -164,8 +194,8 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
         .with_context(|| format!("binding {}", args.listen))?;
     let addr = listener.local_addr()?;
     let admin_listener = match args.admin_listen {
-        AdminListen::Off => None,
-        AdminListen::On(a) => Some(
+        Listen::Off => None,
+        Listen::On(a) => Some(
             tokio::net::TcpListener::bind(a)
                 .await
                 .with_context(|| format!("binding the admin listener {a}"))?,
@@ -178,9 +208,30 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
         stop_tx.send_replace(true);
     });
 
-    let registry = Registry::with_store(&args.maps);
+    let registry = Registry::with_options(
+        Some(&args.maps),
+        RegistryOptions {
+            audit_rate: args.audit_rate,
+        },
+    );
+    let stats = Arc::new(RpcStats::default());
     let options = ServeOptions {
         grace_period: Duration::from_secs(args.grace_period_secs),
+        stats: stats.clone(),
+    };
+    let telemetry = match args.telemetry_listen {
+        Listen::Off => None,
+        Listen::On(a) => {
+            let l = tokio::net::TcpListener::bind(a)
+                .await
+                .with_context(|| format!("binding the telemetry listener {a}"))?;
+            tracing::info!(addr = %l.local_addr()?, "telemetry listening");
+            Some(tokio::spawn(run_telemetry(
+                l,
+                Telemetry::new(registry.clone(), stats.clone()),
+                stopped(stop_rx.clone()),
+            )))
+        }
     };
     let server = tokio::spawn(serve(
         listener,
@@ -227,6 +278,9 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
         a.await??;
     }
     watcher.await?;
+    if let Some(t) = telemetry {
+        t.await?.context("telemetry listener")?;
+    }
     let counts = registry.decision_counts();
     let (accepted, deferred) = counts.iter().fold((0, 0), |(a, d), c| (a + c.2, d + c.3));
     tracing::info!(accepted, deferred, "stopped");

@@ -29,23 +29,27 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex, MutexGuard};
 use tokio::sync::watch as latch;
 
-/// Accepted and deferred decisions of one (model, map version).
+/// Accepted, deferred and audited decisions of one (model, map version).
 #[derive(Debug, Default)]
 pub struct DecisionCounters {
     accepted: AtomicU64,
     deferred: AtomicU64,
+    audited: AtomicU64,
 }
 
 impl DecisionCounters {
-    /// Counts one decision.
+    /// Counts one decision; `audited` only for an accepted item marked for audit.
     #[inline]
-    pub fn record(&self, accepted: bool) {
+    pub fn record(&self, accepted: bool, audited: bool) {
         let c = if accepted {
             &self.accepted
         } else {
             &self.deferred
         };
         c.fetch_add(1, Ordering::Relaxed);
+        if audited {
+            self.audited.fetch_add(1, Ordering::Relaxed);
+        }
     }
 
     /// (accepted, deferred) so far.
@@ -55,6 +59,19 @@ impl DecisionCounters {
             self.deferred.load(Ordering::Relaxed),
         )
     }
+
+    /// Accepted items marked for audit so far.
+    pub fn audited(&self) -> u64 {
+        self.audited.load(Ordering::Relaxed)
+    }
+}
+
+/// Settings of a registry that apply to every map it loads.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct RegistryOptions {
+    /// Share of accepted items, chosen from a hash of the request id, marked for audit; in
+    /// [0, 1].
+    pub audit_rate: f64,
 }
 
 /// An immutable routing table: one [`ModelRoute`] per model.
@@ -164,8 +181,15 @@ impl Registry {
     /// An empty, not-ready registry backed by the map store in `dir`; call
     /// [`Registry::rescan`] (or start the watcher) to load it.
     pub fn with_store(dir: &Path) -> Arc<Self> {
+        Self::with_options(Some(dir), RegistryOptions::default())
+    }
+
+    /// An empty, not-ready registry, with a store in `dir` if given.
+    pub fn with_options(dir: Option<&Path>, options: RegistryOptions) -> Arc<Self> {
+        let mut rollout = Rollout::new(dir.map(Path::to_owned));
+        rollout.set_audit_rate(options.audit_rate);
         Arc::new(Registry {
-            rollout: Mutex::new(Rollout::new(Some(dir.to_owned()))),
+            rollout: Mutex::new(rollout),
             ..Self::default()
         })
     }
@@ -318,12 +342,13 @@ impl Registry {
         *self.ready.borrow()
     }
 
-    /// (model, map version, accepted, deferred) for every pair served since start, sorted.
-    pub fn decision_counts(&self) -> Vec<(String, String, u64, u64)> {
-        let counters: BTreeMap<(String, String), (u64, u64)> = self.lock().counters();
+    /// (model, map version, accepted, deferred, audited) for every pair served since start,
+    /// sorted.
+    pub fn decision_counts(&self) -> Vec<(String, String, u64, u64, u64)> {
+        let counters: BTreeMap<(String, String), (u64, u64, u64)> = self.lock().counters();
         counters
             .into_iter()
-            .map(|((m, v), (a, d))| (m, v, a, d))
+            .map(|((m, v), (a, d, au))| (m, v, a, d, au))
             .collect()
     }
 }

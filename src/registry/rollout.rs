@@ -12,7 +12,7 @@
 //! - a file that disappears unloads its version unless that version is active, canary or
 //!   shadow, which keep serving from memory.
 
-use super::route::{Canary, ModelRoute, ServedMap, Shadow, ShadowStats};
+use super::route::{cut_for, Canary, ModelRoute, ServedMap, Shadow, ShadowStats};
 use super::store::{self, FileCache, StoreError};
 use super::{DecisionCounters, Snapshot};
 use crate::mapfile::CalibrationMap;
@@ -278,6 +278,8 @@ pub(super) struct Rollout {
     publishes_total: u64,
     /// Refused files at the latest scan that belong to no served model.
     unserved: usize,
+    /// Audit cut given to every map loaded.
+    audit_cut: u128,
     last_dir_error: Option<String>,
 }
 
@@ -338,8 +340,13 @@ impl Rollout {
             rejections_total: 0,
             publishes_total: 0,
             unserved: 0,
+            audit_cut: 0,
             last_dir_error: None,
         }
+    }
+
+    pub(super) fn set_audit_rate(&mut self, rate: f64) {
+        self.audit_cut = cut_for(rate);
     }
 
     pub(super) fn store_dir(&self) -> Option<&Path> {
@@ -362,7 +369,11 @@ impl Rollout {
     fn served(&mut self, map: CalibrationMap) -> Arc<ServedMap> {
         let key = (map.model().to_owned(), map.map_version().to_owned());
         let counters = self.counters.entry(key).or_default().clone();
-        Arc::new(ServedMap { map, counters })
+        Arc::new(ServedMap {
+            map,
+            counters,
+            audit_cut: self.audit_cut,
+        })
     }
 
     /// Replaces everything with `maps`, each active, without a store.
@@ -821,12 +832,15 @@ impl Rollout {
         Snapshot { by_model }
     }
 
-    /// Counts of every (model, version) served.
-    pub(super) fn counters(&self) -> BTreeMap<(String, String), (u64, u64)> {
+    /// (accepted, deferred, audited) of every (model, version) served.
+    pub(super) fn counters(&self) -> BTreeMap<(String, String), (u64, u64, u64)> {
         self.counters
             .iter()
-            .map(|(k, c)| (k.clone(), c.get()))
-            .filter(|(_, (a, d))| a + d > 0)
+            .map(|(k, c)| {
+                let (a, d) = c.get();
+                (k.clone(), (a, d, c.audited()))
+            })
+            .filter(|(_, (a, d, _))| a + d > 0)
             .collect()
     }
 

@@ -9,6 +9,17 @@ use std::sync::Arc;
 /// Seed of the request-id hash that picks canary requests (any fixed value; changing it moves
 /// requests between versions).
 const CANARY_SEED: u64 = 0x6361_6e61_7279_0001;
+/// Seed of the request-id hash that picks the audit sample; different from the canary's so the
+/// audit sample is independent of the canary split.
+const AUDIT_SEED: u64 = 0x6175_6469_7400_0002;
+
+/// 2^64 as f64: turns a share in [0, 1] into a cut on [0, 2^64].
+const TWO_POW_64: f64 = 18_446_744_073_709_551_616.0;
+
+/// The cut below which a hash in [0, 2^64) falls with probability `share`.
+pub(super) fn cut_for(share: f64) -> u128 {
+    (share.clamp(0.0, 1.0) * TWO_POW_64) as u128
+}
 
 /// Fixed-point scale of the summed absolute confidence change (1e-9 resolution).
 const CHANGE_SCALE: f64 = 1e9;
@@ -20,6 +31,22 @@ pub struct ServedMap {
     pub map: CalibrationMap,
     /// Shared with every snapshot that serves this (model, version).
     pub counters: Arc<DecisionCounters>,
+    /// Accepted items whose request-id hash falls below this cut are marked for audit.
+    pub audit_cut: u128,
+}
+
+impl ServedMap {
+    /// True when an accepted item with this request id belongs to the audit sample (never
+    /// without a request id: its outcome could not be joined back).
+    #[inline]
+    pub fn audits(&self, request_id: &str) -> bool {
+        self.audit_cut > 0
+            && !request_id.is_empty()
+            && u128::from(xxhash_rust::xxh3::xxh3_64_with_seed(
+                request_id.as_bytes(),
+                AUDIT_SEED,
+            )) < self.audit_cut
+    }
 }
 
 /// How a version was chosen for a request.
@@ -92,8 +119,10 @@ pub(super) struct Canary {
 
 impl Canary {
     pub(super) fn new(map: Arc<ServedMap>, fraction: f64) -> Self {
-        let cut = (fraction.clamp(0.0, 1.0) * 18_446_744_073_709_551_616.0) as u128;
-        Canary { map, cut }
+        Canary {
+            map,
+            cut: cut_for(fraction),
+        }
     }
 }
 
@@ -180,6 +209,22 @@ mod tests {
     }
 
     #[test]
+    fn the_audit_sample_takes_its_share_and_never_an_empty_id() {
+        let mut m = served();
+        m.audit_cut = cut_for(0.2);
+        let n = 20_000;
+        let hits = (0..n).filter(|i| m.audits(&format!("req-{i}"))).count();
+        // Standard error sqrt(0.2·0.8/20000) ≈ 0.0028 (closed form); allow 5.
+        assert!(
+            (hits as f64 / n as f64 - 0.2).abs() < 5.0 * 0.0028,
+            "{hits}"
+        );
+        assert!(!m.audits(""));
+        m.audit_cut = 0;
+        assert!(!m.audits("req-1"));
+    }
+
+    #[test]
     fn shadow_stats_count_flips_and_mean_change() {
         let s = ShadowStats::default();
         s.record(true, false, 0.25);
@@ -191,6 +236,7 @@ mod tests {
     }
 
     fn served() -> ServedMap {
+        // An identity map, K = 2, threshold 0.5.
         use crate::decision::DecisionPolicy;
         use crate::mapfile::MapParts;
         use crate::method::{InputForm, Method};
@@ -207,6 +253,7 @@ mod tests {
             })
             .unwrap(),
             counters: Arc::default(),
+            audit_cut: 0,
         }
     }
 }

@@ -15,10 +15,12 @@ use crate::proto::v1::{
     GetDecisionCountsResponse, ListMapsRequest, ListMapsResponse, MapInfo,
 };
 use crate::registry::{Registry, Snapshot};
+use crate::telemetry::RpcStats;
 use std::future::Future;
 use std::pin::Pin;
 use std::sync::Arc;
 use std::task::{Context, Poll};
+use std::time::Instant;
 use tokio::sync::watch;
 use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
@@ -32,13 +34,23 @@ pub struct CalibratorService {
     registry: Arc<Registry>,
     /// watch: turns true when shutdown begins, so open streams stop taking new rows.
     draining: watch::Receiver<bool>,
+    /// Arc: shared with the telemetry scrape; atomics only.
+    stats: Arc<RpcStats>,
 }
 
 impl CalibratorService {
     /// A service answering from `registry`; open streams end with UNAVAILABLE once `draining`
     /// turns true.
-    pub fn new(registry: Arc<Registry>, draining: watch::Receiver<bool>) -> Self {
-        CalibratorService { registry, draining }
+    pub fn new(
+        registry: Arc<Registry>,
+        draining: watch::Receiver<bool>,
+        stats: Arc<RpcStats>,
+    ) -> Self {
+        CalibratorService {
+            registry,
+            draining,
+            stats,
+        }
     }
 }
 
@@ -74,8 +86,29 @@ where
     }
 }
 
-fn result_of(snapshot: &Snapshot, req: &CalibrateRequest, index: usize) -> CalibrateResult {
-    let outcome = match answer(snapshot, req) {
+/// Answers one request, counting its latency or its error code.
+#[inline]
+fn counted(
+    snapshot: &Snapshot,
+    req: &CalibrateRequest,
+    stats: &RpcStats,
+) -> Result<CalibrateResponse, RowError> {
+    let started = Instant::now();
+    let r = answer(snapshot, req);
+    match &r {
+        Ok(_) => stats.observe(started.elapsed()),
+        Err(e) => stats.error(status::code(e)),
+    }
+    r
+}
+
+fn result_of(
+    snapshot: &Snapshot,
+    req: &CalibrateRequest,
+    index: usize,
+    stats: &RpcStats,
+) -> CalibrateResult {
+    let outcome = match counted(snapshot, req, stats) {
         Ok(r) => Outcome::Response(r),
         Err(e) => {
             tracing::debug!(index, error = %e, "row refused");
@@ -96,7 +129,9 @@ impl Calibrator for CalibratorService {
         request: Request<CalibrateRequest>,
     ) -> Result<Response<CalibrateResponse>, Status> {
         let req = request.get_ref();
-        let resp = self.registry.with_snapshot(|s| answer(s, req))?;
+        let resp = self
+            .registry
+            .with_snapshot(|s| counted(s, req, &self.stats))?;
         Ok(Response::new(resp))
     }
 
@@ -106,6 +141,7 @@ impl Calibrator for CalibratorService {
     ) -> Result<Response<CalibrateBatchResponse>, Status> {
         let rows = &request.get_ref().rows;
         if rows.len() > MAX_BATCH_ROWS {
+            self.stats.error(tonic::Code::InvalidArgument);
             return Err(Status::invalid_argument(format!(
                 "batch has {} rows; at most {MAX_BATCH_ROWS} are accepted",
                 rows.len()
@@ -116,7 +152,7 @@ impl Calibrator for CalibratorService {
         let results = rows
             .iter()
             .enumerate()
-            .map(|(i, r)| result_of(&snapshot, r, i))
+            .map(|(i, r)| result_of(&snapshot, r, i, &self.stats))
             .collect();
         Ok(Response::new(CalibrateBatchResponse { results }))
     }
@@ -128,10 +164,11 @@ impl Calibrator for CalibratorService {
         request: Request<Streaming<CalibrateRequest>>,
     ) -> Result<Response<Self::CalibrateStreamStream>, Status> {
         let registry = self.registry.clone();
+        let stats = self.stats.clone();
         let mut index = 0usize;
         let rows = request.into_inner().map(move |item| {
             let req = item?;
-            let r = registry.with_snapshot(|s| result_of(s, &req, index));
+            let r = registry.with_snapshot(|s| result_of(s, &req, index, &stats));
             index += 1;
             Ok(r)
         });
@@ -182,12 +219,14 @@ impl Calibrator for CalibratorService {
             .registry
             .decision_counts()
             .into_iter()
-            .map(|(model, map_version, accepted, deferred)| DecisionCount {
-                model,
-                map_version,
-                accepted,
-                deferred,
-            })
+            .map(
+                |(model, map_version, accepted, deferred, _)| DecisionCount {
+                    model,
+                    map_version,
+                    accepted,
+                    deferred,
+                },
+            )
             .collect();
         Ok(Response::new(GetDecisionCountsResponse { counts }))
     }

@@ -143,6 +143,7 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
             map_version: String::new(),
             request_id: String::new(),
             classes,
+            audit: false,
             route: match how {
                 Route::Active => PbRoute::Active as i32,
                 Route::Canary => PbRoute::Canary as i32,
@@ -150,9 +151,9 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
             },
         }
     });
-    served
-        .counters
-        .record(resp.decision == PbDecision::Accept as i32);
+    let accepted = resp.decision == PbDecision::Accept as i32;
+    resp.audit = accepted && served.audits(&req.request_id);
+    served.counters.record(accepted, resp.audit);
     resp.map_version = map.map_version().to_owned();
     resp.request_id.clone_from(&req.request_id);
     Ok(resp)
