@@ -10,6 +10,7 @@
 //! - [`eval`] — calibration quality: ECE and friends, NLL, Brier, AURC, bootstrap, drift (pure).
 //! - [`dataset`] — reading labelled logits from .npy, CSV and JSON Lines; writing probabilities.
 //! - [`mapfile`] — the map file: reading with every problem named, writing sealed with a digest.
+//! - [`journal`] — the decision log: recent decisions joined to outcomes, and the rotated journal.
 //! - [`registry`] — the live maps as immutable snapshots swapped whole: the map store, its
 //!   watcher, versions, canary, shadow, and decision counters.
 //! - [`service`] — the gRPC handlers (data plane and admin plane) and the one mapping of errors
@@ -30,6 +31,7 @@ pub mod decision;
 pub mod demo;
 pub mod eval;
 pub mod fit;
+pub mod journal;
 pub mod mapfile;
 pub mod method;
 pub mod numeric;

@@ -4,6 +4,7 @@
 //! [`run`] takes an already-bound listener and a shutdown future, so tests bind port 0 and stop
 //! the server when they are done.
 
+use crate::journal::DecisionLog;
 use crate::proto::v1::calibrator_server::CalibratorServer;
 use crate::proto::v1::map_control_server::MapControlServer;
 use crate::registry::Registry;
@@ -28,6 +29,8 @@ pub struct ServeOptions {
     pub grace_period: Duration,
     /// Request counters the data plane keeps (shared with telemetry).
     pub stats: Arc<RpcStats>,
+    /// The decision log: journal of decisions and outcomes (none: RecordOutcome is refused).
+    pub journal: Option<DecisionLog>,
 }
 
 impl Default for ServeOptions {
@@ -35,6 +38,7 @@ impl Default for ServeOptions {
         ServeOptions {
             grace_period: Duration::from_secs(10),
             stats: Arc::default(),
+            journal: None,
         }
     }
 }
@@ -106,11 +110,10 @@ pub async fn run(
     let server = tonic::transport::Server::builder()
         .add_service(health)
         .add_service(reflection)
-        .add_service(CalibratorServer::new(CalibratorService::new(
-            registry,
-            draining,
-            options.stats.clone(),
-        )))
+        .add_service(CalibratorServer::new(
+            CalibratorService::new(registry, draining, options.stats.clone())
+                .with_journal(options.journal.clone()),
+        ))
         .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
     tokio::pin!(server);
     let grace = options.grace_period;

@@ -359,7 +359,17 @@ pub fn spawn_serve(maps: &Path, extra: &[&str]) -> Served {
 }
 
 fn spawn(maps: &Path, extra: &[&str]) -> (Served, Vec<String>) {
-    let mut child = candor()
+    spawn_with(candor(), maps, extra)
+}
+
+/// Starts `cmd` (the binary, or a wrapper that execs it with the arguments it is given) as
+/// `candor serve` on ephemeral ports.
+pub fn spawn_with(
+    mut cmd: std::process::Command,
+    maps: &Path,
+    extra: &[&str],
+) -> (Served, Vec<String>) {
+    let mut child = cmd
         .args([
             "serve",
             "--listen",

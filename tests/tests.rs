@@ -2,6 +2,7 @@
 
 mod cli;
 mod conformance;
+mod journal;
 mod offline;
 mod report;
 mod rollout;

@@ -1,5 +1,6 @@
 //! `candor serve`: configuration parsed once, then the sidecar runs until SIGTERM or SIGINT.
 
+use crate::journal::{DecisionLog, JournalOptions};
 use crate::registry::{spawn_store_watcher, Registry, RegistryOptions, WatchOptions};
 use crate::server::{run as serve, run_admin, ServeOptions};
 use crate::service::AdminToken;
@@ -61,6 +62,33 @@ pub struct ServeArgs {
         value_parser = parse_share
     )]
     audit_rate: f64,
+    /// Directory of the decision journal (decisions and outcomes, JSON Lines, rotated by size).
+    /// Without it, outcomes are still joined to recent decisions but nothing is written.
+    #[arg(long, env = "CANDOR_JOURNAL_DIR", value_name = "DIR")]
+    journal_dir: Option<PathBuf>,
+    /// Sync the journal to disk after each batch, before acknowledging its outcomes (without it,
+    /// each batch reaches the OS at once: it survives a crash of the process, not of the machine).
+    #[arg(long, env = "CANDOR_JOURNAL_FSYNC")]
+    journal_fsync: bool,
+    /// Rotate a journal file once it would grow past this many MiB.
+    #[arg(long, env = "CANDOR_JOURNAL_MAX_MIB", default_value_t = 64, value_name = "MIB",
+          value_parser = clap::value_parser!(u64).range(1..))]
+    journal_max_mib: u64,
+    /// Journal files kept (older ones are removed).
+    #[arg(long, env = "CANDOR_JOURNAL_KEEP", default_value_t = 16, value_name = "N",
+          value_parser = clap::value_parser!(u64).range(1..))]
+    journal_keep: u64,
+    /// Leave the raw logits out of the journal (smaller, but no refit from it).
+    #[arg(long, env = "CANDOR_JOURNAL_WITHOUT_LOGITS")]
+    journal_without_logits: bool,
+    /// Recent decisions remembered for joining outcomes.
+    #[arg(
+        long,
+        env = "CANDOR_REMEMBER_DECISIONS",
+        default_value_t = 1_000_000,
+        value_name = "N"
+    )]
+    remember_decisions: usize,
     /// File holding the admin bearer token (surrounding whitespace ignored).
     #[arg(long, env = "CANDOR_ADMIN_TOKEN_FILE", value_name = "PATH")]
     admin_token_file: Option<PathBuf>,
@@ -214,10 +242,29 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
             audit_rate: args.audit_rate,
         },
     );
+    // The first scan runs before anything is served or logged as listening, so the first
+    // answer of /ready or health already reflects the store.
+    let r = registry.clone();
+    let view = tokio::task::spawn_blocking(move || r.rescan()).await?;
     let stats = Arc::new(RpcStats::default());
+    let journal = DecisionLog::spawn(JournalOptions {
+        dir: args.journal_dir.clone(),
+        max_file_bytes: args.journal_max_mib * 1024 * 1024,
+        keep_files: usize::try_from(args.journal_keep).unwrap_or(usize::MAX),
+        fsync: args.journal_fsync,
+        logits: !args.journal_without_logits,
+        remember: args.remember_decisions,
+        ..JournalOptions::default()
+    })
+    .context("starting the decision journal")?;
+    if let Some(d) = &args.journal_dir {
+        tracing::info!(dir = %d.display(), fsync = args.journal_fsync, "journal open");
+    }
+    let journal_stats = journal.stats().clone();
     let options = ServeOptions {
         grace_period: Duration::from_secs(args.grace_period_secs),
         stats: stats.clone(),
+        journal: Some(journal),
     };
     let telemetry = match args.telemetry_listen {
         Listen::Off => None,
@@ -228,7 +275,7 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
             tracing::info!(addr = %l.local_addr()?, "telemetry listening");
             Some(tokio::spawn(run_telemetry(
                 l,
-                Telemetry::new(registry.clone(), stats.clone()),
+                Telemetry::new(registry.clone(), stats.clone()).with_journal(journal_stats),
                 stopped(stop_rx.clone()),
             )))
         }
@@ -254,8 +301,6 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
         None => None,
     };
 
-    let r = registry.clone();
-    let view = tokio::task::spawn_blocking(move || r.rescan()).await?;
     if !registry.is_ready() {
         if view.models.is_empty() {
             tracing::warn!(dir = %args.maps.display(), "no valid map found; health stays NOT_SERVING");

@@ -8,12 +8,14 @@ mod status;
 pub use admin::{check_token, model_status, AdminToken, MapControlService, MAX_PUSH_BYTES};
 pub use row::{answer, RowError};
 
+use crate::journal::{Decided, DecisionLog, OutcomeError};
 use crate::proto::v1::calibrator_server::Calibrator;
 use crate::proto::v1::{
     calibrate_result::Outcome, CalibrateBatchRequest, CalibrateBatchResponse, CalibrateRequest,
     CalibrateResponse, CalibrateResult, DecisionCount, GetDecisionCountsRequest,
     GetDecisionCountsResponse, ListMapsRequest, ListMapsResponse, MapInfo,
 };
+use crate::proto::v1::{outcome_result, OutcomeRequest, OutcomeResponse, OutcomeResult};
 use crate::registry::{Registry, Snapshot};
 use crate::telemetry::RpcStats;
 use std::future::Future;
@@ -36,6 +38,8 @@ pub struct CalibratorService {
     draining: watch::Receiver<bool>,
     /// Arc: shared with the telemetry scrape; atomics only.
     stats: Arc<RpcStats>,
+    /// The decision log, when outcomes are taken back.
+    journal: Option<DecisionLog>,
 }
 
 impl CalibratorService {
@@ -50,7 +54,31 @@ impl CalibratorService {
             registry,
             draining,
             stats,
+            journal: None,
         }
+    }
+
+    /// Hands every answered request to `journal` and takes outcomes back through it.
+    #[must_use]
+    pub fn with_journal(mut self, journal: Option<DecisionLog>) -> Self {
+        self.journal = journal;
+        self
+    }
+
+    async fn outcome(&self, req: &OutcomeRequest) -> Result<OutcomeResponse, OutcomeError> {
+        let Some(j) = &self.journal else {
+            return Err(OutcomeError::Stopped);
+        };
+        let ack = j.outcome(&req.request_id, req.true_label).await?;
+        self.stats.outcome();
+        Ok(OutcomeResponse {
+            request_id: req.request_id.clone(),
+            model: ack.model,
+            map_version: ack.map_version,
+            correct: ack.correct,
+            duplicate: ack.duplicate,
+            journaled: ack.journaled,
+        })
     }
 }
 
@@ -86,17 +114,35 @@ where
     }
 }
 
-/// Answers one request, counting its latency or its error code.
+/// Answers one request, counting its latency or its error code, and hands it to the journal.
 #[inline]
 fn counted(
     snapshot: &Snapshot,
     req: &CalibrateRequest,
     stats: &RpcStats,
+    journal: Option<&DecisionLog>,
 ) -> Result<CalibrateResponse, RowError> {
     let started = Instant::now();
     let r = answer(snapshot, req);
     match &r {
-        Ok(_) => stats.observe(started.elapsed()),
+        Ok(resp) => {
+            stats.observe(started.elapsed());
+            if let Some(j) = journal {
+                j.decision(&Decided {
+                    request_id: &req.request_id,
+                    model: &req.model,
+                    map_version: &resp.map_version,
+                    classes: snapshot
+                        .get(&req.model)
+                        .map_or(0, |m| m.active().map.classes() as u32),
+                    predicted: resp.predicted_class,
+                    confidence: resp.confidence,
+                    accepted: resp.decision == crate::proto::v1::Decision::Accept as i32,
+                    audit: resp.audit,
+                    logits: &req.logits,
+                });
+            }
+        }
         Err(e) => stats.error(status::code(e)),
     }
     r
@@ -107,8 +153,9 @@ fn result_of(
     req: &CalibrateRequest,
     index: usize,
     stats: &RpcStats,
+    journal: Option<&DecisionLog>,
 ) -> CalibrateResult {
-    let outcome = match counted(snapshot, req, stats) {
+    let outcome = match counted(snapshot, req, stats, journal) {
         Ok(r) => Outcome::Response(r),
         Err(e) => {
             tracing::debug!(index, error = %e, "row refused");
@@ -131,7 +178,7 @@ impl Calibrator for CalibratorService {
         let req = request.get_ref();
         let resp = self
             .registry
-            .with_snapshot(|s| counted(s, req, &self.stats))?;
+            .with_snapshot(|s| counted(s, req, &self.stats, self.journal.as_ref()))?;
         Ok(Response::new(resp))
     }
 
@@ -152,7 +199,7 @@ impl Calibrator for CalibratorService {
         let results = rows
             .iter()
             .enumerate()
-            .map(|(i, r)| result_of(&snapshot, r, i, &self.stats))
+            .map(|(i, r)| result_of(&snapshot, r, i, &self.stats, self.journal.as_ref()))
             .collect();
         Ok(Response::new(CalibrateBatchResponse { results }))
     }
@@ -165,10 +212,11 @@ impl Calibrator for CalibratorService {
     ) -> Result<Response<Self::CalibrateStreamStream>, Status> {
         let registry = self.registry.clone();
         let stats = self.stats.clone();
+        let journal = self.journal.clone();
         let mut index = 0usize;
         let rows = request.into_inner().map(move |item| {
             let req = item?;
-            let r = registry.with_snapshot(|s| result_of(s, &req, index, &stats));
+            let r = registry.with_snapshot(|s| result_of(s, &req, index, &stats, journal.as_ref()));
             index += 1;
             Ok(r)
         });
@@ -182,6 +230,76 @@ impl Calibrator for CalibratorService {
             drained,
             done: false,
         })))
+    }
+
+    async fn record_outcome(
+        &self,
+        request: Request<OutcomeRequest>,
+    ) -> Result<Response<OutcomeResponse>, Status> {
+        if self.journal.is_none() {
+            return Err(Status::failed_precondition(
+                "this sidecar keeps no decision log, so outcomes cannot be joined",
+            ));
+        }
+        match self.outcome(request.get_ref()).await {
+            Ok(r) => Ok(Response::new(r)),
+            Err(e) => {
+                let code = status::outcome_code(&e);
+                self.stats.error(code);
+                Err(Status::new(code, e.to_string()))
+            }
+        }
+    }
+
+    type RecordOutcomesStream =
+        Pin<Box<dyn Stream<Item = Result<OutcomeResult, Status>> + Send + 'static>>;
+
+    async fn record_outcomes(
+        &self,
+        request: Request<Streaming<OutcomeRequest>>,
+    ) -> Result<Response<Self::RecordOutcomesStream>, Status> {
+        if self.journal.is_none() {
+            return Err(Status::failed_precondition(
+                "this sidecar keeps no decision log, so outcomes cannot be joined",
+            ));
+        }
+        let me = self.clone();
+        let mut inbound = request.into_inner();
+        let out = async_stream_of(move |tx| async move {
+            let mut index = 0u64;
+            while let Some(item) = inbound.next().await {
+                let result = match item {
+                    Ok(req) => match me.outcome(&req).await {
+                        Ok(r) => OutcomeResult {
+                            outcome: Some(outcome_result::Outcome::Response(r)),
+                        },
+                        Err(e) => {
+                            let code = status::outcome_code(&e);
+                            me.stats.error(code);
+                            OutcomeResult {
+                                outcome: Some(outcome_result::Outcome::Error(
+                                    crate::proto::v1::RowError {
+                                        code: code as i32,
+                                        message: e.to_string(),
+                                        request_id: req.request_id.clone(),
+                                        index,
+                                    },
+                                )),
+                            }
+                        }
+                    },
+                    Err(s) => {
+                        let _ = tx.send(Err(s)).await;
+                        return;
+                    }
+                };
+                index += 1;
+                if tx.send(Ok(result)).await.is_err() {
+                    return;
+                }
+            }
+        });
+        Ok(Response::new(out))
     }
 
     async fn list_maps(
@@ -230,4 +348,19 @@ impl Calibrator for CalibratorService {
             .collect();
         Ok(Response::new(GetDecisionCountsResponse { counts }))
     }
+}
+
+/// A response stream fed by a task: `f` gets the sending half of a small channel.
+fn async_stream_of<T, F, Fut>(
+    f: F,
+) -> Pin<Box<dyn Stream<Item = Result<T, Status>> + Send + 'static>>
+where
+    T: Send + 'static,
+    F: FnOnce(tokio::sync::mpsc::Sender<Result<T, Status>>) -> Fut,
+    Fut: Future<Output = ()> + Send + 'static,
+{
+    // mpsc: the task answers in order and waits when the caller reads slowly.
+    let (tx, rx) = tokio::sync::mpsc::channel(16);
+    tokio::spawn(f(tx));
+    Box::pin(tokio_stream::wrappers::ReceiverStream::new(rx))
 }

@@ -40,6 +40,26 @@ pub fn row_error(e: &RowError, index: usize, request_id: &str) -> crate::proto::
     }
 }
 
+/// The gRPC status for a refused outcome.
+///
+/// | error | code |
+/// |---|---|
+/// | empty request id, label not a class of the map | INVALID_ARGUMENT |
+/// | unknown or expired request id | NOT_FOUND |
+/// | another label already recorded | ALREADY_EXISTS |
+/// | decision log busy | RESOURCE_EXHAUSTED |
+/// | decision log stopped | UNAVAILABLE |
+pub fn outcome_code(e: &crate::journal::OutcomeError) -> Code {
+    use crate::journal::OutcomeError as E;
+    match e {
+        E::EmptyId | E::LabelOutOfRange { .. } => Code::InvalidArgument,
+        E::Unknown(_) => Code::NotFound,
+        E::Conflict { .. } => Code::AlreadyExists,
+        E::Busy => Code::ResourceExhausted,
+        E::Stopped => Code::Unavailable,
+    }
+}
+
 /// The gRPC status for a refused admin change.
 ///
 /// | error | code |

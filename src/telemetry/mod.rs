@@ -9,6 +9,7 @@ mod http;
 
 pub use http::{router, run_telemetry};
 
+use crate::journal::JournalStats;
 use crate::registry::Registry;
 use prometheus_client::collector::Collector;
 use prometheus_client::encoding::{DescriptorEncoder, EncodeMetric};
@@ -85,12 +86,24 @@ impl RpcStats {
 pub struct Telemetry {
     registry: Arc<Registry>,
     stats: Arc<RpcStats>,
+    journal: Option<Arc<JournalStats>>,
 }
 
 impl Telemetry {
     /// Telemetry of `registry` and `stats`.
     pub fn new(registry: Arc<Registry>, stats: Arc<RpcStats>) -> Self {
-        Telemetry { registry, stats }
+        Telemetry {
+            registry,
+            stats,
+            journal: None,
+        }
+    }
+
+    /// Also report the decision journal's counters.
+    #[must_use]
+    pub fn with_journal(mut self, journal: Arc<JournalStats>) -> Self {
+        self.journal = Some(journal);
+        self
     }
 
     /// The registry whose readiness `/ready` reports.
@@ -257,6 +270,20 @@ impl Collector for Telemetry {
             "Map versions serving requests (1), by state.",
             &rows,
         )?;
+        if let Some(j) = &self.journal {
+            for (name, help, v) in [
+                ("journal_records", "Records written to the decision journal.", &j.written),
+                ("journal_dropped", "Decision-log records dropped (writer behind, or a failed write); requests are never held up.", &j.dropped),
+                ("journal_write_errors", "Journal writes that failed (full or broken disk).", &j.write_errors),
+            ] {
+                ConstCounter::new(v.load(Ordering::Relaxed)).encode(encoder.encode_descriptor(
+                    name,
+                    help,
+                    None,
+                    MetricType::Counter,
+                )?)?;
+            }
+        }
         ConstGauge::new(i64::from(self.registry.is_ready())).encode(encoder.encode_descriptor(
             "ready",
             "1 once every model has a valid active map.",

@@ -1,0 +1,554 @@
+//! The writer thread: the table of recent decisions (for joining outcomes) and the journal.
+
+use super::file::{JournalFiles, Record};
+use std::collections::{HashMap, VecDeque};
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::mpsc::{sync_channel, Receiver, RecvTimeoutError, SyncSender, TrySendError};
+use std::sync::Arc;
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
+use tokio::sync::oneshot;
+
+/// Records the writer takes in one batch at most.
+const BATCH: usize = 4096;
+/// How long the writer waits for a record before checking for expired decisions.
+const IDLE: Duration = Duration::from_millis(200);
+
+/// How the decision log behaves.
+#[derive(Debug, Clone)]
+pub struct JournalOptions {
+    /// Journal directory; `None` keeps only the table of recent decisions (outcomes still join).
+    pub dir: Option<PathBuf>,
+    /// A journal file is rotated once it would grow past this many bytes.
+    pub max_file_bytes: u64,
+    /// Journal files kept; older ones are removed.
+    pub keep_files: usize,
+    /// Sync each batch to disk (`fdatasync`) before acknowledging its outcomes.
+    pub fsync: bool,
+    /// Keep the raw logits in decision records (needed to refit from the journal).
+    pub logits: bool,
+    /// Records that may wait for the writer; beyond this, new ones are dropped and counted.
+    pub queue: usize,
+    /// Decisions remembered for joining outcomes (oldest forgotten first).
+    pub remember: usize,
+    /// How long a decision can be joined to its outcome.
+    pub retention: Duration,
+}
+
+impl Default for JournalOptions {
+    fn default() -> Self {
+        JournalOptions {
+            dir: None,
+            max_file_bytes: 64 * 1024 * 1024,
+            keep_files: 16,
+            fsync: false,
+            logits: true,
+            queue: 65_536,
+            remember: 1_000_000,
+            retention: Duration::from_secs(7 * 24 * 3600),
+        }
+    }
+}
+
+/// Counters of the decision log.
+#[derive(Debug, Default)]
+pub struct JournalStats {
+    /// Records written to the journal.
+    pub written: AtomicU64,
+    /// Records dropped: queue full, or a write that failed.
+    pub dropped: AtomicU64,
+    /// Journal writes that failed (full or broken disk).
+    pub write_errors: AtomicU64,
+    /// Outcomes joined to a decision.
+    pub outcomes: AtomicU64,
+}
+
+/// What an accepted outcome joined.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutcomeAck {
+    /// Model of the decision.
+    pub model: String,
+    /// Map version that answered.
+    pub map_version: String,
+    /// True when the prediction was right.
+    pub correct: bool,
+    /// True when this label had already been recorded (the call changed nothing).
+    pub duplicate: bool,
+    /// True when the outcome is in the journal (false without a journal or after a failed write).
+    pub journaled: bool,
+}
+
+/// Why an outcome was refused.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum OutcomeError {
+    /// No remembered decision has this id.
+    #[error("no recent decision has request id {0:?} (unknown, or past the retention)")]
+    Unknown(String),
+    /// The id already has another label.
+    #[error("request id {request_id:?} already has true label {recorded}; got {given}")]
+    Conflict {
+        /// The request id.
+        request_id: String,
+        /// Label recorded first.
+        recorded: u32,
+        /// Label given now.
+        given: u32,
+    },
+    /// The request id is empty.
+    #[error("request_id is empty; outcomes are joined by request id")]
+    EmptyId,
+    /// The label is not a class of the map that answered.
+    #[error("true_label {label} is not a class of the map that answered {request_id:?} (classes 0..{classes})")]
+    LabelOutOfRange {
+        /// The request id.
+        request_id: String,
+        /// The label given.
+        label: u32,
+        /// Classes of the map.
+        classes: u32,
+    },
+    /// The writer is behind; try again.
+    #[error("the decision log is busy; retry")]
+    Busy,
+    /// The writer has stopped.
+    #[error("the decision log has stopped")]
+    Stopped,
+}
+
+/// One answered request, as the service hands it over.
+#[derive(Debug, Clone, Copy)]
+pub struct Decided<'a> {
+    /// The caller's id (may be empty: then it cannot be joined to an outcome).
+    pub request_id: &'a str,
+    /// Model.
+    pub model: &'a str,
+    /// Map version that answered.
+    pub map_version: &'a str,
+    /// Number of classes of the map.
+    pub classes: u32,
+    /// Predicted class.
+    pub predicted: u32,
+    /// Calibrated confidence.
+    pub confidence: f32,
+    /// Accepted or deferred.
+    pub accepted: bool,
+    /// In the audit sample.
+    pub audit: bool,
+    /// The raw logits.
+    pub logits: &'a [f32],
+}
+
+enum Entry {
+    /// A decision record and the map's class count.
+    Decision(Record, u32),
+    Outcome {
+        request_id: String,
+        label: u32,
+        reply: oneshot::Sender<Result<OutcomeAck, OutcomeError>>,
+    },
+}
+
+/// Handle to the decision log; cheap to clone.
+#[derive(Debug, Clone)]
+pub struct DecisionLog {
+    /// SyncSender: bounded, and `try_send` never blocks the request path.
+    tx: SyncSender<Entry>,
+    stats: Arc<JournalStats>,
+    logits: bool,
+}
+
+impl std::fmt::Debug for Entry {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Entry")
+    }
+}
+
+fn now_ms() -> u64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_millis() as u64)
+}
+
+impl DecisionLog {
+    /// Starts the writer thread.
+    ///
+    /// # Errors
+    /// When the journal directory cannot be created or its first file opened.
+    pub fn spawn(options: JournalOptions) -> std::io::Result<Self> {
+        let files = match &options.dir {
+            Some(d) => Some(JournalFiles::open(
+                d,
+                options.max_file_bytes,
+                options.keep_files,
+            )?),
+            None => None,
+        };
+        let (tx, rx) = sync_channel(options.queue.max(1));
+        let stats = Arc::new(JournalStats::default());
+        let logits = options.logits;
+        let mut w = Writer {
+            rx,
+            files,
+            options,
+            stats: stats.clone(),
+            recent: HashMap::new(),
+            order: VecDeque::new(),
+        };
+        std::thread::Builder::new()
+            .name("candor-journal".into())
+            .spawn(move || w.run())?;
+        Ok(DecisionLog { tx, stats, logits })
+    }
+
+    /// The log's counters.
+    pub fn stats(&self) -> &Arc<JournalStats> {
+        &self.stats
+    }
+
+    /// Hands one answered request to the writer; drops it (counted) when the writer is behind.
+    #[inline]
+    pub fn decision(&self, d: &Decided<'_>) {
+        let r = Record::Decision {
+            at_ms: now_ms(),
+            request_id: d.request_id.to_owned(),
+            model: d.model.to_owned(),
+            map_version: d.map_version.to_owned(),
+            predicted: d.predicted,
+            confidence: d.confidence,
+            accepted: d.accepted,
+            audit: d.audit,
+            logits: self.logits.then(|| d.logits.to_vec()),
+        };
+        if self.tx.try_send(Entry::Decision(r, d.classes)).is_err() {
+            self.stats.dropped.fetch_add(1, Ordering::Relaxed);
+        }
+    }
+
+    /// Joins a true label to the decision with `request_id`; resolves once it is journaled.
+    ///
+    /// # Errors
+    /// [`OutcomeError`] for an empty, unknown or conflicting id, or a log that is busy or gone.
+    pub async fn outcome(&self, request_id: &str, label: u32) -> Result<OutcomeAck, OutcomeError> {
+        if request_id.is_empty() {
+            return Err(OutcomeError::EmptyId);
+        }
+        let (reply, rx) = oneshot::channel();
+        let entry = Entry::Outcome {
+            request_id: request_id.to_owned(),
+            label,
+            reply,
+        };
+        match self.tx.try_send(entry) {
+            Ok(()) => rx.await.map_err(|_| OutcomeError::Stopped)?,
+            Err(TrySendError::Full(_)) => Err(OutcomeError::Busy),
+            Err(TrySendError::Disconnected(_)) => Err(OutcomeError::Stopped),
+        }
+    }
+}
+
+/// A remembered decision.
+struct Recent {
+    at_ms: u64,
+    model: String,
+    map_version: String,
+    classes: u32,
+    predicted: u32,
+    accepted: bool,
+    audit: bool,
+    label: Option<u32>,
+}
+
+struct Writer {
+    rx: Receiver<Entry>,
+    files: Option<JournalFiles>,
+    options: JournalOptions,
+    stats: Arc<JournalStats>,
+    recent: HashMap<String, Recent>,
+    /// Request ids in arrival order, for forgetting the oldest.
+    order: VecDeque<(u64, String)>,
+}
+
+type Reply = (
+    oneshot::Sender<Result<OutcomeAck, OutcomeError>>,
+    OutcomeAck,
+);
+
+impl Writer {
+    fn run(&mut self) {
+        let mut buf = Vec::with_capacity(1 << 16);
+        loop {
+            let first = match self.rx.recv_timeout(IDLE) {
+                Ok(e) => e,
+                Err(RecvTimeoutError::Timeout) => {
+                    self.forget_old();
+                    continue;
+                }
+                Err(RecvTimeoutError::Disconnected) => return,
+            };
+            buf.clear();
+            let mut lines = 0u64;
+            let mut replies: Vec<Reply> = Vec::new();
+            let mut next = Some(first);
+            let mut taken = 0;
+            while let Some(entry) = next.take() {
+                self.take(entry, &mut buf, &mut lines, &mut replies);
+                taken += 1;
+                if taken < BATCH {
+                    next = self.rx.try_recv().ok();
+                }
+            }
+            let journaled = self.write(&buf, lines);
+            for (reply, mut ack) in replies {
+                ack.journaled = journaled;
+                self.stats.outcomes.fetch_add(1, Ordering::Relaxed);
+                let _ = reply.send(Ok(ack));
+            }
+            self.forget_old();
+        }
+    }
+
+    fn take(&mut self, entry: Entry, buf: &mut Vec<u8>, lines: &mut u64, replies: &mut Vec<Reply>) {
+        match entry {
+            Entry::Decision(r, classes) => {
+                if let Record::Decision {
+                    at_ms,
+                    request_id,
+                    model,
+                    map_version,
+                    predicted,
+                    accepted,
+                    audit,
+                    ..
+                } = &r
+                {
+                    if !request_id.is_empty() {
+                        self.order.push_back((*at_ms, request_id.clone()));
+                        self.recent.insert(
+                            request_id.clone(),
+                            Recent {
+                                at_ms: *at_ms,
+                                model: model.clone(),
+                                map_version: map_version.clone(),
+                                classes,
+                                predicted: *predicted,
+                                accepted: *accepted,
+                                audit: *audit,
+                                label: None,
+                            },
+                        );
+                        self.forget_beyond_size();
+                    }
+                }
+                if self.files.is_some() {
+                    push_line(buf, &r);
+                    *lines += 1;
+                }
+            }
+            Entry::Outcome {
+                request_id,
+                label,
+                reply,
+            } => {
+                let Some(d) = self.recent.get_mut(&request_id) else {
+                    let _ = reply.send(Err(OutcomeError::Unknown(request_id)));
+                    return;
+                };
+                if label >= d.classes {
+                    let classes = d.classes;
+                    let _ = reply.send(Err(OutcomeError::LabelOutOfRange {
+                        request_id,
+                        label,
+                        classes,
+                    }));
+                    return;
+                }
+                let mut ack = OutcomeAck {
+                    model: d.model.clone(),
+                    map_version: d.map_version.clone(),
+                    correct: d.predicted == label,
+                    duplicate: false,
+                    journaled: false,
+                };
+                match d.label {
+                    Some(l) if l == label => {
+                        ack.duplicate = true;
+                        ack.journaled = self.files.is_some();
+                        let _ = reply.send(Ok(ack));
+                        return;
+                    }
+                    Some(l) => {
+                        let _ = reply.send(Err(OutcomeError::Conflict {
+                            request_id,
+                            recorded: l,
+                            given: label,
+                        }));
+                        return;
+                    }
+                    None => d.label = Some(label),
+                }
+                if self.files.is_some() {
+                    push_line(
+                        buf,
+                        &Record::Outcome {
+                            at_ms: now_ms(),
+                            request_id,
+                            model: d.model.clone(),
+                            map_version: d.map_version.clone(),
+                            true_label: label,
+                            predicted: d.predicted,
+                            accepted: d.accepted,
+                            audit: d.audit,
+                        },
+                    );
+                    *lines += 1;
+                }
+                replies.push((reply, ack));
+            }
+        }
+    }
+
+    /// Writes a batch; true when it reached the journal (and disk, with fsync).
+    fn write(&mut self, buf: &[u8], lines: u64) -> bool {
+        let Some(files) = self.files.as_mut() else {
+            return false;
+        };
+        if buf.is_empty() {
+            return true;
+        }
+        match files.append(buf, self.options.fsync) {
+            Ok(()) => {
+                self.stats.written.fetch_add(lines, Ordering::Relaxed);
+                true
+            }
+            Err(e) => {
+                let n = self.stats.write_errors.fetch_add(1, Ordering::Relaxed);
+                self.stats.dropped.fetch_add(lines, Ordering::Relaxed);
+                // Log the first failure and then every 1000th, not every batch of a full disk.
+                if n.is_multiple_of(1000) {
+                    tracing::error!(error = %e, dropped = lines, "journal write failed; records dropped, requests unaffected");
+                }
+                false
+            }
+        }
+    }
+
+    fn forget_beyond_size(&mut self) {
+        while self.order.len() > self.options.remember {
+            if let Some((at, id)) = self.order.pop_front() {
+                if self.recent.get(&id).is_some_and(|r| r.at_ms == at) {
+                    self.recent.remove(&id);
+                }
+            }
+        }
+    }
+
+    fn forget_old(&mut self) {
+        let cutoff = now_ms().saturating_sub(self.options.retention.as_millis() as u64);
+        while let Some((at, id)) = self.order.front() {
+            let over = self.order.len() > self.options.remember;
+            if !over && *at >= cutoff {
+                break;
+            }
+            // Remove only if the table still holds this arrival (an id reused later stays).
+            if self.recent.get(id).is_some_and(|r| r.at_ms == *at) {
+                self.recent.remove(id);
+            }
+            self.order.pop_front();
+        }
+    }
+}
+
+fn push_line(buf: &mut Vec<u8>, r: &Record) {
+    // Serialising a plain struct to a Vec cannot fail.
+    let _ = serde_json::to_writer(&mut *buf, r);
+    buf.push(b'\n');
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::journal::read_journal;
+
+    fn decided(
+        id: &str,
+        predicted: u32,
+        confidence: f32,
+        accepted: bool,
+        audit: bool,
+    ) -> Decided<'_> {
+        Decided {
+            request_id: id,
+            model: "m",
+            map_version: "v1",
+            classes: 3,
+            predicted,
+            confidence,
+            accepted,
+            audit,
+            logits: &[0.0, 1.0, 3.0],
+        }
+    }
+
+    #[tokio::test]
+    async fn outcomes_join_once_and_are_journaled() {
+        let dir = tempfile::tempdir().unwrap();
+        let log = DecisionLog::spawn(JournalOptions {
+            dir: Some(dir.path().to_owned()),
+            fsync: true,
+            ..JournalOptions::default()
+        })
+        .unwrap();
+        log.decision(&decided("a", 2, 0.9, true, true));
+        log.decision(&decided("b", 0, 0.4, false, false));
+        let ack = log.outcome("a", 2).await.unwrap();
+        assert!(ack.correct && ack.journaled && !ack.duplicate);
+        let again = log.outcome("a", 2).await.unwrap();
+        assert!(again.duplicate);
+        assert!(matches!(
+            log.outcome("a", 1).await,
+            Err(OutcomeError::Conflict {
+                recorded: 2,
+                given: 1,
+                ..
+            })
+        ));
+        assert!(matches!(
+            log.outcome("zzz", 1).await,
+            Err(OutcomeError::Unknown(_))
+        ));
+        assert_eq!(log.outcome("", 1).await, Err(OutcomeError::EmptyId));
+        assert!(matches!(
+            log.outcome("b", 3).await,
+            Err(OutcomeError::LabelOutOfRange { classes: 3, .. })
+        ));
+        let ack = log.outcome("b", 1).await.unwrap();
+        assert!(!ack.correct);
+        let read = read_journal(dir.path()).unwrap();
+        let outcomes = read
+            .records
+            .iter()
+            .filter(|r| matches!(r, Record::Outcome { .. }))
+            .count();
+        assert_eq!((read.records.len(), outcomes, read.torn), (4, 2, 0));
+    }
+
+    #[test]
+    fn the_oldest_decisions_are_forgotten_beyond_the_table_size() {
+        let log = DecisionLog::spawn(JournalOptions {
+            remember: 2,
+            ..JournalOptions::default()
+        })
+        .unwrap();
+        for id in ["a", "b", "c"] {
+            log.decision(&decided(id, 0, 0.9, true, false));
+        }
+        let rt = tokio::runtime::Builder::new_current_thread()
+            .build()
+            .unwrap();
+        assert!(matches!(
+            rt.block_on(log.outcome("a", 0)),
+            Err(OutcomeError::Unknown(_))
+        ));
+        assert!(rt.block_on(log.outcome("c", 0)).is_ok());
+    }
+}
