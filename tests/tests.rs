@@ -2,6 +2,7 @@
 
 mod cli;
 mod conformance;
+mod loadgen;
 mod offline;
 mod report;
 mod serve;

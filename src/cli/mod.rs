@@ -2,6 +2,7 @@
 //! unreadable input, a server that could not start).
 
 mod apply;
+mod bench;
 mod check;
 mod demo;
 mod eval;
@@ -58,6 +59,8 @@ enum Command {
     Demo(demo::DemoArgs),
     /// Write a self-contained HTML report of a map on labelled data for a reviewer to sign off.
     Report(report::ReportArgs),
+    /// Load a running sidecar in a closed loop: throughput and latency percentiles.
+    Bench(Box<bench::BenchArgs>),
 }
 
 /// Parses the process arguments and runs the command.
@@ -71,6 +74,7 @@ pub fn main() -> ExitCode {
         Command::Eval(args) => eval::run(&args),
         Command::Apply(args) => apply::run(&args),
         Command::Report(args) => report::run(&args),
+        Command::Bench(args) => bench::run(&args),
     };
     match result {
         Ok(code) => code,
