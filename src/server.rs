@@ -11,7 +11,7 @@ use std::future::Future;
 use std::sync::Arc;
 use std::time::Duration;
 use tokio::net::TcpListener;
-use tokio_stream::wrappers::TcpListenerStream;
+use tonic::transport::server::TcpIncoming;
 use tonic_health::ServingStatus;
 
 /// Name of the data-plane service in gRPC health checking.
@@ -41,6 +41,16 @@ pub enum ServeError {
     /// The reflection service could not be built from the descriptor set.
     #[error("server reflection could not be set up: {0}")]
     Reflection(#[from] tonic_reflection::server::Error),
+}
+
+/// Accepted connections with TCP_NODELAY set, as tonic sets it when it binds the port itself.
+///
+/// Without it, Nagle's algorithm holds back the second write of a response (an HTTP/2 response
+/// is written as headers and data, then trailers) until the client acknowledges the first, and
+/// the client delays that acknowledgement by up to 40 ms: a K = 1000 answer took 44 ms at
+/// concurrency 1 instead of about 0.2 ms (measured with `cargo bench --bench sidecar_compare`).
+fn incoming(listener: TcpListener) -> TcpIncoming {
+    TcpIncoming::from(listener).with_nodelay(Some(true))
 }
 
 /// Serves until `shutdown` completes, then marks health NOT_SERVING, stops accepting connections
@@ -98,7 +108,7 @@ pub async fn run(
         .add_service(health)
         .add_service(reflection)
         .add_service(CalibratorServer::new(CalibratorService::new(registry)))
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
+        .serve_with_incoming_shutdown(incoming(listener), stop);
     tokio::pin!(server);
     let grace = options.grace_period;
     tokio::select! {
