@@ -7,6 +7,11 @@
 
 use super::{BinaryMap, Problem, Problems, ScoreKind};
 
+/// Up to this many knots the interval is found by counting the knots ≤ s in one vectorised sweep
+/// rather than by binary search, whose chain of dependent loads takes longer for a short list
+/// (one-vs-rest at K = 1000 searches a thousand such lists per row).
+pub const LINEAR_SEARCH_MAX_KNOTS: usize = 64;
+
 /// Validated knots: x strictly increasing and finite, y non-decreasing in [0, 1].
 #[derive(Debug, Clone, PartialEq)]
 pub struct Isotonic {
@@ -56,7 +61,7 @@ impl Isotonic {
 impl BinaryMap for Isotonic {
     const SCORE: ScoreKind = ScoreKind::Probability;
 
-    #[inline]
+    #[inline(always)]
     fn apply(&self, s: f64) -> f64 {
         let n = self.x.len();
         if s <= self.x[0] {
@@ -65,8 +70,13 @@ impl BinaryMap for Isotonic {
         if s >= self.x[n - 1] {
             return self.y[n - 1];
         }
-        // First knot strictly above s; s lies in [x[j-1], x[j]).
-        let j = self.x.partition_point(|&k| k <= s);
+        // First knot strictly above s; s lies in [x[j-1], x[j]). x is increasing, so that index
+        // is the number of knots ≤ s.
+        let j = if n <= LINEAR_SEARCH_MAX_KNOTS {
+            self.x.iter().map(|&k| usize::from(k <= s)).sum()
+        } else {
+            self.x.partition_point(|&k| k <= s)
+        };
         let (x0, x1, y0, y1) = (self.x[j - 1], self.x[j], self.y[j - 1], self.y[j]);
         y0 + (y1 - y0) * ((s - x0) / (x1 - x0))
     }
