@@ -20,7 +20,7 @@ pub use affine::{Dirichlet, MatrixScaling, VectorScaling};
 pub use bbq::{Bbq, BbqModel, WEIGHT_SUM_TOLERANCE};
 pub use beta::BetaCalibration;
 pub use histogram::{bin_index, Histogram};
-pub use isotonic::{Isotonic, LINEAR_SEARCH_MAX_KNOTS};
+pub use isotonic::{Isotonic, COUNTED_BLOCKS_MAX, SEARCH_BLOCK};
 pub use one_vs_rest::{BinaryMap, OneVsRest, ScoreKind};
 pub use platt::Platt;
 pub use problem::{Problem, Problems};

@@ -16,7 +16,8 @@ fn methods(k: usize, rng: &mut ChaCha8Rng) -> Vec<Method> {
     let biases: Vec<f64> = (0..k).map(|_| normal(0.3)).collect();
     let weights: Vec<f64> = (0..k).map(|_| 1.0 + normal(0.2)).collect();
     let n = OneVsRest::<Platt>::maps_needed(k);
-    // Knot counts on both sides of LINEAR_SEARCH_MAX_KNOTS, so both searches are covered.
+    // Knot counts with no full block, several blocks and a partial one, and past the counted
+    // limit, so every search path is covered.
     let isotonic = |knots: usize| -> Isotonic {
         let x = (0..knots)
             .map(|i| i as f64 / (knots - 1) as f64)
@@ -44,8 +45,14 @@ fn methods(k: usize, rng: &mut ChaCha8Rng) -> Vec<Method> {
             .unwrap(),
         ),
         Method::Isotonic(OneVsRest::try_new(k, vec![isotonic(7); n], "m").unwrap()),
+        Method::Isotonic(OneVsRest::try_new(k, vec![isotonic(67); n], "m").unwrap()),
         Method::Isotonic(
-            OneVsRest::try_new(k, vec![isotonic(LINEAR_SEARCH_MAX_KNOTS + 9); n], "m").unwrap(),
+            OneVsRest::try_new(
+                k,
+                vec![isotonic(COUNTED_BLOCKS_MAX * SEARCH_BLOCK + 9); n],
+                "m",
+            )
+            .unwrap(),
         ),
         Method::Bbq(
             OneVsRest::try_new(
@@ -113,10 +120,11 @@ fn every_instruction_set_gives_the_same_bits() {
 fn knot_counting_finds_the_same_interval_as_binary_search() {
     // The two searches in Isotonic::apply agree: evaluate one curve stored with few knots
     // (counted) and with the same knots padded past the limit by exact midpoints (searched).
-    let few = LINEAR_SEARCH_MAX_KNOTS / 2 + 8;
+    let limit = COUNTED_BLOCKS_MAX * SEARCH_BLOCK;
+    let few = limit / 2 + 45;
     let x: Vec<f64> = (0..few).map(|i| i as f64 / (few - 1) as f64).collect();
     let y: Vec<f64> = x.iter().map(|v| v.sqrt()).collect();
-    assert!(few <= LINEAR_SEARCH_MAX_KNOTS);
+    assert!(few <= limit && !few.is_multiple_of(SEARCH_BLOCK));
     let short = Isotonic::try_new(x.clone(), y.clone(), "m").unwrap();
     let (mut xl, mut yl) = (Vec::new(), Vec::new());
     for i in 0..few {
@@ -128,8 +136,22 @@ fn knot_counting_finds_the_same_interval_as_binary_search() {
         }
     }
     let long = Isotonic::try_new(xl, yl, "m").unwrap();
-    assert!(long.x().len() > LINEAR_SEARCH_MAX_KNOTS);
-    for s in [0.0, 0.013, 0.25, 0.5, x[5], 0.777, 0.9999, 1.0] {
+    assert!(long.x().len() > limit);
+    // Points in the first block, on fences, in the last (partial) block and on knots.
+    for s in [
+        0.0,
+        0.001,
+        0.013,
+        x[7],
+        x[8],
+        0.25,
+        0.5,
+        x[5],
+        0.777,
+        x[few - 3],
+        0.9999,
+        1.0,
+    ] {
         // Linear interpolation of a linear interpolation at its own midpoints: the same line.
         let (a, b) = (short.apply(s), long.apply(s));
         assert!((a - b).abs() <= 1e-15, "s = {s}: {a} vs {b}");
