@@ -163,6 +163,7 @@ fn json_of(plan: &LoadPlan, r: &LoadReport) -> Value {
         "window_secs": r.window.as_secs_f64(),
         "throughput_per_sec": r.throughput(),
         "latency_us": latency_json(r),
+        "client_cpu_us_per_request": r.client_cpu_us_per_request(),
         "server": plan.server_pid.map(|pid| json!({
             "pid": pid,
             "cpu_secs": r.server_cpu_secs,
@@ -214,6 +215,9 @@ fn print_text(plan: &LoadPlan, r: &LoadReport) {
             "server CPU (pid {pid}): {cpu:.2} s, {:.1} µs per request",
             r.server_cpu_us_per_request().unwrap_or(f64::NAN)
         );
+    }
+    if let Some(us) = r.client_cpu_us_per_request() {
+        say!("load generator CPU: {us:.1} µs per request");
     }
     if let Some(e) = &r.first_error {
         say!("first error: {e}");

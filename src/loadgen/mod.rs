@@ -5,12 +5,16 @@
 //! ([`verify`]); then C workers each send a request, wait for the answer and send the next, for a
 //! warm-up (not recorded) and a timed window. Round trips of requests sent inside the window go
 //! into an HDR histogram; throughput is their count over the window. With a server PID, the
-//! server's CPU time over the window is read from /proc ([`process`]).
+//! server's CPU time over the window is read from /proc ([`process`]), as is the generator's own.
+//! While timing, requests go out pre-encoded and answers are read only for success ([`wire`]):
+//! the generator shares the machine with the server and should spend as little of it as it can.
 
 pub mod payload;
+mod precheck;
 pub mod process;
 pub mod target;
 pub mod verify;
+pub mod wire;
 mod workers;
 
 pub use verify::{Expect, Reference, VerifyError};
@@ -190,6 +194,8 @@ pub struct LoadReport {
     pub first_error: Option<String>,
     /// Server CPU time (user + system) over the window, in seconds, when a PID was given.
     pub server_cpu_secs: Option<f64>,
+    /// The load generator's own process CPU time over the window, in seconds (Linux).
+    pub client_cpu_secs: Option<f64>,
 }
 
 impl LoadReport {
@@ -210,10 +216,17 @@ impl LoadReport {
 
     /// Server CPU time per answered request, in microseconds.
     pub fn server_cpu_us_per_request(&self) -> Option<f64> {
+        self.per_request_us(self.server_cpu_secs)
+    }
+
+    /// The load generator's own CPU time per answered request, in microseconds.
+    pub fn client_cpu_us_per_request(&self) -> Option<f64> {
+        self.per_request_us(self.client_cpu_secs)
+    }
+
+    fn per_request_us(&self, secs: Option<f64>) -> Option<f64> {
         let n = self.requests();
-        self.server_cpu_secs
-            .filter(|_| n > 0)
-            .map(|s| s * 1e6 / n as f64)
+        secs.filter(|_| n > 0).map(|s| s * 1e6 / n as f64)
     }
 }
 
@@ -224,17 +237,16 @@ impl LoadReport {
 /// before timing, or /proc cannot be read. Failures during timing are counted in the report.
 pub async fn run(plan: &mut LoadPlan) -> Result<LoadReport, LoadError> {
     plan.check()?;
-    let requests: Arc<[CalibrateRequest]> =
-        payload::generate(plan.seed, plan.classes, plan.payloads)
-            .into_iter()
-            .enumerate()
-            .map(|(i, logits)| CalibrateRequest {
-                model: plan.model.clone(),
-                logits,
-                request_id: format!("bench-{i}"),
-                top_k: 0,
-            })
-            .collect();
+    let requests: Vec<CalibrateRequest> = payload::generate(plan.seed, plan.classes, plan.payloads)
+        .into_iter()
+        .enumerate()
+        .map(|(i, logits)| CalibrateRequest {
+            model: plan.model.clone(),
+            logits,
+            request_id: format!("bench-{i}"),
+            top_k: 0,
+        })
+        .collect();
     let endpoint = Endpoint::from_shared(format!("http://{}", plan.target))
         .map_err(|source| LoadError::Connect {
             addr: plan.target,
@@ -242,19 +254,19 @@ pub async fn run(plan: &mut LoadPlan) -> Result<LoadReport, LoadError> {
         })?
         .connect_timeout(CONNECT_TIMEOUT)
         .tcp_nodelay(true);
-    let mut clients = Vec::with_capacity(plan.connections);
+    let mut channels: Vec<Channel> = Vec::with_capacity(plan.connections);
     for _ in 0..plan.connections {
-        let channel: Channel = endpoint
+        let channel = endpoint
             .connect()
             .await
             .map_err(|source| LoadError::Connect {
                 addr: plan.target,
                 source,
             })?;
-        clients.push(CalibratorClient::new(channel));
+        channels.push(channel);
     }
-    let checked = workers::check_all(
-        &mut clients[0],
+    let checked = precheck::check_all(
+        &mut CalibratorClient::new(channels[0].clone()),
         &requests,
         plan.mode,
         plan.classes,
@@ -262,18 +274,20 @@ pub async fn run(plan: &mut LoadPlan) -> Result<LoadReport, LoadError> {
         plan.reference.as_mut(),
     )
     .await?;
+    let encoded: Arc<[wire::Encoded]> = requests.iter().map(wire::Encoded::new).collect();
+    drop(requests);
 
     let start = tokio::time::Instant::now();
     let clock = workers::Clock {
         window_start: start + plan.warmup,
         end: start + plan.warmup + plan.duration,
     };
-    let n = requests.len();
+    let n = encoded.len();
     let handles: Vec<_> = (0..plan.concurrency)
         .map(|w| {
-            let client = clients[w % clients.len()].clone();
+            let client = wire::LeanClient::new(channels[w % channels.len()].clone());
             let first = w * n / plan.concurrency;
-            let requests = requests.clone();
+            let requests = encoded.clone();
             match plan.mode {
                 Mode::Unary => tokio::spawn(workers::unary(client, requests, first, clock)),
                 Mode::Stream => tokio::spawn(workers::stream(client, requests, first, clock)),
@@ -282,18 +296,18 @@ pub async fn run(plan: &mut LoadPlan) -> Result<LoadReport, LoadError> {
         .collect();
     tokio::time::sleep_until(clock.window_start).await;
     let cpu_before = plan.server_pid.map(process::cpu_ticks).transpose()?;
+    let own_before = process::cpu_ticks(std::process::id()).ok();
     let mut tallies = Vec::with_capacity(handles.len());
     for h in handles {
         tallies.push(h.await??);
     }
     let window = clock.window_start.elapsed();
     let cpu_after = plan.server_pid.map(process::cpu_ticks).transpose()?;
-    let server_cpu_secs = match (cpu_before, cpu_after) {
-        (Some(a), Some(b)) => {
-            Some(b.saturating_sub(a) as f64 / process::clock_ticks_per_sec() as f64)
-        }
-        _ => None,
-    };
+    let own_after = process::cpu_ticks(std::process::id()).ok();
+    let tick = 1.0 / process::clock_ticks_per_sec() as f64;
+    let secs = |a: Option<u64>, b: Option<u64>| Some(b?.saturating_sub(a?) as f64 * tick);
+    let server_cpu_secs = secs(cpu_before, cpu_after);
+    let client_cpu_secs = secs(own_before, own_after);
 
     let mut latency_ns = Histogram::new(HISTOGRAM_SIGNIFICANT_DIGITS)
         .map_err(|e| LoadError::Histogram(e.to_string()))?;
@@ -312,5 +326,6 @@ pub async fn run(plan: &mut LoadPlan) -> Result<LoadReport, LoadError> {
         errors,
         first_error,
         server_cpu_secs,
+        client_cpu_secs,
     })
 }

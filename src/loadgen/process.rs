@@ -86,6 +86,17 @@ pub fn resident_bytes(pid: u32) -> Result<u64, ProcError> {
         .map_err(|reason| ProcError::Parse { path, reason })
 }
 
+/// Peak resident memory (VmHWM) of process `pid`, in bytes.
+///
+/// # Errors
+/// [`ProcError`] when /proc/PID/status is missing or has no VmHWM line.
+pub fn peak_resident_bytes(pid: u32) -> Result<u64, ProcError> {
+    let (path, text) = read(PathBuf::from(format!("/proc/{pid}/status")))?;
+    parse_kib_field(&text, "VmHWM:")
+        .map(|kib| kib * 1024)
+        .map_err(|reason| ProcError::Parse { path, reason })
+}
+
 fn parse_kib_field(text: &str, key: &str) -> Result<u64, String> {
     let line = text
         .lines()
@@ -119,7 +130,10 @@ mod tests {
     fn this_process_can_be_read() {
         let me = std::process::id();
         assert!(cpu_ticks(me).is_ok());
-        assert!(resident_bytes(me).unwrap() > 0);
+        let rss = resident_bytes(me).unwrap();
+        assert!(rss > 0);
+        // The high-water mark never falls, so read after the current value it is at least as big.
+        assert!(peak_resident_bytes(me).unwrap() >= rss);
         assert!(clock_ticks_per_sec() > 0);
     }
 
@@ -127,6 +141,7 @@ mod tests {
     fn vmrss_lines_are_parsed_in_kib() {
         let text = "Name:\tcandor\nVmHWM:\t  9000 kB\nVmRSS:\t   8120 kB\n";
         assert_eq!(parse_kib_field(text, "VmRSS:"), Ok(8120));
+        assert_eq!(parse_kib_field(text, "VmHWM:"), Ok(9000));
         assert!(parse_kib_field("VmRSS: 12 MB\n", "VmRSS:").is_err());
         assert!(parse_kib_field("Name: x\n", "VmRSS:").is_err());
     }

@@ -2,18 +2,14 @@
 //! and sends the next, until the end of the run. Unary workers make one Calibrate call per request;
 //! stream workers keep one CalibrateStream open and time each message's round trip on it.
 
-use super::verify::{verify, Expect, Reference, VerifyError};
-use super::{LoadError, Mode, REQUEST_TIMEOUT};
-use crate::proto::v1::calibrate_result::Outcome;
-use crate::proto::v1::calibrator_client::CalibratorClient;
-use crate::proto::v1::{CalibrateRequest, CalibrateResponse, CalibrateResult};
+use super::wire::{Encoded, LeanClient, StreamAnswer};
+use super::{LoadError, REQUEST_TIMEOUT};
 use hdrhistogram::Histogram;
 use std::sync::Arc;
 use tokio::sync::mpsc;
 use tokio::time::{timeout, Instant};
 use tokio_stream::wrappers::ReceiverStream;
-use tonic::transport::Channel;
-use tonic::Streaming;
+use tonic::codec::Streaming;
 
 /// Significant decimal digits the latency histogram keeps (0.1% resolution).
 pub const HISTOGRAM_SIGNIFICANT_DIGITS: u8 = 3;
@@ -67,8 +63,8 @@ impl Tally {
 
 /// Runs one unary worker, starting at payload `first`.
 pub(super) async fn unary(
-    mut client: CalibratorClient<Channel>,
-    requests: Arc<[CalibrateRequest]>,
+    mut client: LeanClient,
+    requests: Arc<[Encoded]>,
     first: usize,
     clock: Clock,
 ) -> Result<Tally, LoadError> {
@@ -88,29 +84,27 @@ pub(super) async fn unary(
 }
 
 /// An open CalibrateStream: a one-slot outbox and the answers.
-struct OpenStream {
-    outbox: mpsc::Sender<CalibrateRequest>,
-    answers: Streaming<CalibrateResult>,
+struct LeanStream {
+    outbox: mpsc::Sender<Encoded>,
+    answers: Streaming<StreamAnswer>,
 }
 
-impl OpenStream {
+impl LeanStream {
     /// Opens a stream with `first` already queued (a server may hold back its response headers
     /// until it has read a message).
-    async fn open(
-        client: &mut CalibratorClient<Channel>,
-        first: CalibrateRequest,
-    ) -> Result<Self, String> {
+    async fn open(client: &mut LeanClient, first: Encoded) -> Result<Self, String> {
         let (outbox, rx) = mpsc::channel(1);
         outbox
             .send(first)
             .await
             .map_err(|_| "the stream's outbox closed".to_owned())?;
-        let call = client.calibrate_stream(ReceiverStream::new(rx));
-        match timeout(REQUEST_TIMEOUT, call).await {
-            Ok(Ok(r)) => Ok(OpenStream {
-                outbox,
-                answers: r.into_inner(),
-            }),
+        match timeout(
+            REQUEST_TIMEOUT,
+            client.calibrate_stream(ReceiverStream::new(rx)),
+        )
+        .await
+        {
+            Ok(Ok(answers)) => Ok(LeanStream { outbox, answers }),
             Ok(Err(status)) => Err(format!("CalibrateStream refused: {status}")),
             Err(_) => Err(format!(
                 "CalibrateStream not opened within {REQUEST_TIMEOUT:?}"
@@ -118,23 +112,20 @@ impl OpenStream {
         }
     }
 
-    /// The answer to the message sent last.
-    async fn answer(&mut self) -> Result<CalibrateResponse, String> {
+    /// Waits for the answer to the message sent last.
+    async fn answer(&mut self) -> Result<(), String> {
         match timeout(REQUEST_TIMEOUT, self.answers.message()).await {
-            Ok(Ok(Some(CalibrateResult {
-                outcome: Some(Outcome::Response(r)),
-            }))) => Ok(r),
-            Ok(Ok(Some(CalibrateResult {
-                outcome: Some(Outcome::Error(e)),
-            }))) => Err(format!("row refused: code {}: {}", e.code, e.message)),
-            Ok(Ok(Some(CalibrateResult { outcome: None }))) => Err("empty result".into()),
+            Ok(Ok(Some(StreamAnswer { error: None }))) => Ok(()),
+            Ok(Ok(Some(StreamAnswer { error: Some(e) }))) => {
+                Err(format!("row refused: code {}: {}", e.code, e.message))
+            }
             Ok(Ok(None)) => Err("the server closed the stream".into()),
             Ok(Err(status)) => Err(format!("stream failed: {status}")),
             Err(_) => Err(format!("no answer within {REQUEST_TIMEOUT:?}")),
         }
     }
 
-    async fn send(&mut self, req: CalibrateRequest) -> Result<(), String> {
+    async fn send(&mut self, req: Encoded) -> Result<(), String> {
         self.outbox
             .send(req)
             .await
@@ -145,15 +136,15 @@ impl OpenStream {
 /// Runs one stream worker on one open stream, starting at payload `first`. A broken stream ends
 /// the worker (its failure is counted).
 pub(super) async fn stream(
-    mut client: CalibratorClient<Channel>,
-    requests: Arc<[CalibrateRequest]>,
+    mut client: LeanClient,
+    requests: Arc<[Encoded]>,
     first: usize,
     clock: Clock,
 ) -> Result<Tally, LoadError> {
     let mut tally = Tally::new()?;
     let n = requests.len();
     let mut sent = Instant::now();
-    let mut open = match OpenStream::open(&mut client, requests[first % n].clone()).await {
+    let mut open = match LeanStream::open(&mut client, requests[first % n].clone()).await {
         Ok(s) => s,
         Err(e) => {
             tally.fail(|| e);
@@ -178,66 +169,4 @@ pub(super) async fn stream(
         i += 1;
     }
     Ok(tally)
-}
-
-/// Sends every payload once (in the run's mode) and checks each answer; returns how many.
-///
-/// # Errors
-/// [`LoadError::Refused`] or [`LoadError::Wrong`] naming the first payload that failed.
-pub(super) async fn check_all(
-    client: &mut CalibratorClient<Channel>,
-    requests: &[CalibrateRequest],
-    mode: Mode,
-    classes: usize,
-    expect: Expect,
-    mut reference: Option<&mut Reference>,
-) -> Result<usize, LoadError> {
-    let wrong = |index: usize| move |source: VerifyError| LoadError::Wrong { index, source };
-    let refused = |index: usize| move |reason: String| LoadError::Refused { index, reason };
-    match mode {
-        Mode::Unary => {
-            for (index, req) in requests.iter().enumerate() {
-                let resp = match timeout(REQUEST_TIMEOUT, client.calibrate(req.clone())).await {
-                    Ok(Ok(r)) => r.into_inner(),
-                    Ok(Err(status)) => return Err(refused(index)(status.to_string())),
-                    Err(_) => {
-                        return Err(refused(index)(format!(
-                            "no answer within {REQUEST_TIMEOUT:?}"
-                        )))
-                    }
-                };
-                verify(
-                    &resp,
-                    &req.logits,
-                    classes,
-                    expect,
-                    reference.as_deref_mut(),
-                )
-                .map_err(wrong(index))?;
-            }
-        }
-        Mode::Stream => {
-            let Some(first) = requests.first() else {
-                return Ok(0);
-            };
-            let mut open = OpenStream::open(client, first.clone())
-                .await
-                .map_err(refused(0))?;
-            for (index, req) in requests.iter().enumerate() {
-                if index > 0 {
-                    open.send(req.clone()).await.map_err(refused(index))?;
-                }
-                let resp = open.answer().await.map_err(refused(index))?;
-                verify(
-                    &resp,
-                    &req.logits,
-                    classes,
-                    expect,
-                    reference.as_deref_mut(),
-                )
-                .map_err(wrong(index))?;
-            }
-        }
-    }
-    Ok(requests.len())
 }
