@@ -22,6 +22,7 @@
 //! - [`proto`] — generated protobuf code.
 //! - [`report`] — the reviewer's HTML report: charts, tables and the policy evidence (pure).
 //! - [`demo`] — the demo scenario and its deterministic data generator.
+//! - [`loadgen`] — the closed-loop load generator behind `candor bench`.
 //! - [`cli`] — the `candor` command line.
 #![forbid(unsafe_code)]
 
@@ -32,6 +33,7 @@ pub mod demo;
 pub mod eval;
 pub mod fit;
 pub mod journal;
+pub mod loadgen;
 pub mod mapfile;
 pub mod method;
 pub mod numeric;

@@ -149,8 +149,12 @@ pub fn softmax_scaled_in_place(z: &mut [f64], beta: f64) -> f64 {
             .for_each(|v| *v = if *v == f64::INFINITY { 1.0 / n } else { 0.0 });
         return m;
     }
-    z.iter_mut()
-        .for_each(|v| *v = exp_nonpositive(beta * (*v - m)));
+    // Plain loops, not closures passed to for_each: a closure is a separate function that the
+    // compiler may leave un-inlined, and then it runs at the baseline vector width even inside a
+    // caller compiled for AVX2 or AVX-512 (method::Workspace::apply dispatches so).
+    for v in z.iter_mut() {
+        *v = exp_nonpositive(beta * (*v - m));
+    }
     let mut acc = [0.0f64; LANES];
     let chunks = z.chunks_exact(LANES);
     let tail = chunks.remainder();
@@ -161,7 +165,9 @@ pub fn softmax_scaled_in_place(z: &mut [f64], beta: f64) -> f64 {
     }
     let sum = acc.iter().sum::<f64>() + tail.iter().sum::<f64>();
     let inv = 1.0 / sum;
-    z.iter_mut().for_each(|v| *v *= inv);
+    for v in z.iter_mut() {
+        *v *= inv;
+    }
     beta * m + sum.ln()
 }
 

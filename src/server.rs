@@ -16,7 +16,7 @@ use std::future::Future;
 use std::sync::Arc;
 use std::time::Duration;
 use tokio::net::TcpListener;
-use tokio_stream::wrappers::TcpListenerStream;
+use tonic::transport::server::TcpIncoming;
 use tonic_health::ServingStatus;
 
 /// Name of the data-plane service in gRPC health checking.
@@ -52,6 +52,16 @@ pub enum ServeError {
     /// The reflection service could not be built from the descriptor set.
     #[error("server reflection could not be set up: {0}")]
     Reflection(#[from] tonic_reflection::server::Error),
+}
+
+/// Accepted connections with TCP_NODELAY set, as tonic sets it when it binds the port itself.
+///
+/// Without it, Nagle's algorithm holds back the second write of a response (an HTTP/2 response
+/// is written as headers and data, then trailers) until the client acknowledges the first, and
+/// the client delays that acknowledgement by up to 40 ms: a K = 1000 answer took 44 ms at
+/// concurrency 1 instead of about 0.2 ms (measured with `cargo bench --bench sidecar_compare`).
+fn incoming(listener: TcpListener) -> TcpIncoming {
+    TcpIncoming::from(listener).with_nodelay(Some(true))
 }
 
 /// Serves until `shutdown` completes, then marks health NOT_SERVING, stops accepting connections
@@ -114,7 +124,7 @@ pub async fn run(
             CalibratorService::new(registry, draining, options.stats.clone())
                 .with_journal(options.journal.clone()),
         ))
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), stop);
+        .serve_with_incoming_shutdown(incoming(listener), stop);
     tokio::pin!(server);
     let grace = options.grace_period;
     tokio::select! {
@@ -154,7 +164,7 @@ pub async fn run_admin(
     );
     tonic::transport::Server::builder()
         .add_service(service)
-        .serve_with_incoming_shutdown(TcpListenerStream::new(listener), shutdown)
+        .serve_with_incoming_shutdown(incoming(listener), shutdown)
         .await
         .map_err(ServeError::from)
 }

@@ -3,6 +3,7 @@
 mod cli;
 mod conformance;
 mod journal;
+mod loadgen;
 mod offline;
 mod report;
 mod rollout;

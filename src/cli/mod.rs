@@ -2,6 +2,7 @@
 //! unreadable input, a server that could not start).
 
 mod apply;
+mod bench;
 mod check;
 mod demo;
 mod eval;
@@ -61,6 +62,8 @@ enum Command {
     Report(report::ReportArgs),
     /// Roll maps out on a running sidecar: list, push, activate, rollback, canary, shadow.
     Maps(maps::MapsArgs),
+    /// Load a running sidecar in a closed loop: throughput and latency percentiles.
+    Bench(Box<bench::BenchArgs>),
 }
 
 /// Parses the process arguments and runs the command.
@@ -75,6 +78,7 @@ pub fn main() -> ExitCode {
         Command::Apply(args) => apply::run(&args),
         Command::Report(args) => report::run(&args),
         Command::Maps(args) => maps::run(&args),
+        Command::Bench(args) => bench::run(&args),
     };
     match result {
         Ok(code) => code,

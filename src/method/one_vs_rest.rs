@@ -11,7 +11,7 @@
 //!   one-vs-rest calibration does (METHODS.md 2.11, source-read there).
 
 use super::{Problem, Problems};
-use crate::numeric::{ln_one_minus_exp, lse};
+use crate::numeric::{ln_one_minus_exp, lse, max, softmax_in_place};
 
 /// Which number a binary map reads.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -73,6 +73,7 @@ impl<M: BinaryMap> OneVsRest<M> {
     }
 
     /// Overwrites a row of logits with calibrated probabilities by the rule in the module docs.
+    #[inline(always)]
     pub fn apply_in_place(&self, z: &mut [f64], _scratch: &mut Vec<f64>) {
         if z.len() == 2 {
             let f = z[1] - z[0];
@@ -86,17 +87,27 @@ impl<M: BinaryMap> OneVsRest<M> {
             z[1] = q1;
             return;
         }
-        let norm = lse(z);
         let mut sum = 0.0;
-        for (v, map) in z.iter_mut().zip(&self.maps) {
-            let lp = if norm.is_finite() { *v - norm } else { 0.0 };
-            let score = match M::SCORE {
-                ScoreKind::LogOdds => lp - ln_one_minus_exp(lp.min(0.0)),
-                ScoreKind::Probability => lp.exp(),
-            };
-            let score = if score.is_nan() { 0.0 } else { score };
-            *v = map.apply(score).clamp(0.0, 1.0);
-            sum += *v;
+        if M::SCORE == ScoreKind::Probability && max(z).is_finite() {
+            // The scores are softmax(z): one vectorised pass (one exp per class) instead of
+            // lse and a libm exp per class, a third of the cost of an isotonic row at K = 1000.
+            softmax_in_place(z);
+            for (v, map) in z.iter_mut().zip(&self.maps) {
+                *v = map.apply(*v).clamp(0.0, 1.0);
+                sum += *v;
+            }
+        } else {
+            let norm = lse(z);
+            for (v, map) in z.iter_mut().zip(&self.maps) {
+                let lp = if norm.is_finite() { *v - norm } else { 0.0 };
+                let score = match M::SCORE {
+                    ScoreKind::LogOdds => lp - ln_one_minus_exp(lp.min(0.0)),
+                    ScoreKind::Probability => lp.exp(),
+                };
+                let score = if score.is_nan() { 0.0 } else { score };
+                *v = map.apply(score).clamp(0.0, 1.0);
+                sum += *v;
+            }
         }
         if sum > 0.0 {
             let inv = 1.0 / sum;

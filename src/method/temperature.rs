@@ -46,7 +46,7 @@ impl Temperature {
     }
 
     /// Overwrites a row of logits with softmax(z / T).
-    #[inline]
+    #[inline(always)]
     pub fn apply_in_place(&self, z: &mut [f64]) {
         softmax_scaled_in_place(z, self.inverse);
     }

@@ -100,7 +100,9 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
             got: req.logits.len(),
         });
     }
-    if let Some(index) = req.logits.iter().position(|v| !v.is_finite()) {
+    // One vectorised scan for the common case; the position is looked for only on failure.
+    if !crate::numeric::all_finite(&req.logits) {
+        let index = req.logits.iter().position(|v| !v.is_finite()).unwrap_or(0);
         return Err(RowError::NonFinite {
             index,
             value: req.logits[index],
