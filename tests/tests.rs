@@ -2,6 +2,7 @@
 
 mod cli;
 mod conformance;
+mod fuzz_corpus;
 mod offline;
 mod report;
 mod serve;
