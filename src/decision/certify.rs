@@ -1513,26 +1513,4 @@ mod tests {
             );
         }
     }
-
-    #[test]
-    #[ignore = "timing: run with cargo test --release -- --ignored"]
-    fn selection_on_a_million_items_is_fast() {
-        let mut rng = ChaCha8Rng::seed_from_u64(51);
-        let (conf, ok) = World::Power(1.0).draw(&mut rng, 1_000_000);
-        let start = std::time::Instant::now();
-        let s = sgr(&conf, &ok, 0.1, 0.05).unwrap();
-        let sgr_time = start.elapsed();
-        let f = fixed_sequence_skipping(&conf, &ok, &default_grid(), 107, 0.1, 0.05).unwrap();
-        let fs_time = start.elapsed() - sgr_time;
-        let need = items_needed(&conf, &ok, 0.01, 0.05, Procedure::Sgr).unwrap();
-        let total = start.elapsed();
-        eprintln!(
-            "SGR {sgr_time:?} θ {:?}; LTT {fs_time:?} θ {:?}; total {total:?} {need:?}",
-            s.threshold, f.threshold
-        );
-        assert!(
-            sgr_time.as_secs_f64() < 2.0 && fs_time.as_secs_f64() < 2.0,
-            "{sgr_time:?} {fs_time:?}"
-        );
-    }
 }

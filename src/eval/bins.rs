@@ -49,10 +49,22 @@ impl EqualWidthBins {
     /// Bin of a value in [0, 1]: the number of interior edges strictly below it, as
     /// `np.searchsorted(edges[1:-1], c, side='left')`. A value on an interior edge goes to the
     /// lower bin, 0 to the first bin, 1 to the last.
+    ///
+    /// Guessed as ⌊c·M⌋ and then moved against the stored edges until the edge rule holds, so
+    /// the result is exactly the search's (the guess is off by one on an edge, or where an edge
+    /// is not exactly m/M) at a fraction of its cost.
     #[inline]
     pub fn bin_of(&self, c: f64) -> usize {
-        let interior = &self.edges[1..self.edges.len() - 1];
-        interior.partition_point(|&e| e < c)
+        let m = self.n_bins();
+        // The cast truncates (NaN and negatives to 0, +∞ saturates); `min` keeps a valid bin.
+        let mut b = ((c * m as f64) as usize).min(m - 1);
+        while b > 0 && self.edges[b] >= c {
+            b -= 1;
+        }
+        while b + 1 < m && self.edges[b + 1] < c {
+            b += 1;
+        }
+        b
     }
 }
 
@@ -88,6 +100,14 @@ impl BinStats {
         self.count += w;
         self.sum_conf += wf * conf;
         self.sum_hit += if hit { wf } else { 0.0 };
+    }
+
+    /// Adds another bin's sums.
+    #[inline]
+    pub fn merge(&mut self, other: &BinStats) {
+        self.count += other.count;
+        self.sum_conf += other.sum_conf;
+        self.sum_hit += other.sum_hit;
     }
 
     /// (mean confidence, accuracy) of a non-empty bin.
@@ -183,6 +203,8 @@ pub(crate) fn array_split_end(n: usize, groups: usize, g: usize) -> usize {
 mod tests {
     use super::super::fixtures::{E3_LABELS, E3_PROBS};
     use super::*;
+    use proptest::prelude::prop_oneof;
+    use proptest::strategy::Just;
 
     #[test]
     fn edges_follow_numpy_linspace() {
@@ -214,6 +236,28 @@ mod tests {
         let b10 = EqualWidthBins::try_new(10).unwrap();
         assert_eq!(b10.bin_of(0.30000000000000004), 2);
         assert_eq!(b10.bin_of(0.3), 2);
+    }
+
+    proptest::proptest! {
+        #[test]
+        fn bin_of_equals_the_edge_search(
+            m in prop_oneof![1usize..40, Just(MAX_BINS), 100usize..2000],
+            edge in 0usize..2000,
+            step in -2i64..3,
+            free in -0.1f64..1.1,
+        ) {
+            let bins = EqualWidthBins::try_new(m).unwrap();
+            let interior = &bins.edges()[1..m];
+            // Values on, just below and just above an edge, and anywhere.
+            let mut c = bins.edges()[edge.min(m)];
+            for _ in 0..step.abs() {
+                c = if step > 0 { c.next_up() } else { c.next_down() };
+            }
+            for v in [c, free, f64::NAN, f64::INFINITY, -0.0] {
+                let want = interior.partition_point(|&e| e < v);
+                proptest::prop_assert_eq!(bins.bin_of(v), want, "M = {}, c = {}", m, v);
+            }
+        }
     }
 
     #[test]

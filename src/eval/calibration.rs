@@ -4,6 +4,7 @@
 //! 1.3–1.5 and 1.10.
 
 use super::bins::{array_split_end, ece_of, lp_sum, mce_of, top_label_stats, BinStats};
+use super::order::ascending_order;
 use super::{EqualWidthBins, EvalError, Predictions};
 use serde::Serialize;
 
@@ -47,8 +48,7 @@ pub fn rms_calibration_error(p: &Predictions<'_>, bins: &EqualWidthBins) -> f64 
 pub fn adaptive_ece(p: &Predictions<'_>, n_groups: usize) -> Result<f64, EvalError> {
     check_groups(n_groups)?;
     let conf = p.confidence();
-    let mut order: Vec<usize> = (0..p.n()).collect();
-    order.sort_by(|&a, &b| conf[a].total_cmp(&conf[b]));
+    let order = ascending_order(conf);
     let n = p.n();
     let mut stats = vec![BinStats::default(); n_groups];
     let mut start = 0;

@@ -21,7 +21,11 @@
 //! - NLL from probabilities clips to `[ε_mach, 1 − ε_mach]` like sklearn.metrics.log_loss and never
 //!   renormalises rows;
 //! - the multi-class Brier score is not halved; [`brier_binary`] gives the halved binary form;
-//! - bootstrap quantiles use numpy's default 'linear' rule.
+//! - bootstrap quantiles use numpy's default 'linear' rule;
+//! - [`standard_report`] draws each replicate's multinomial counts chunk by chunk
+//!   ([`CHUNKED_RNG_NAME`]) and evaluates blocks of replicates in one sweep over the items
+//!   sorted once; the law is that of drawing n indices with replacement, the random stream is
+//!   not [`resample_indices`]'s.
 //!
 //! Entry point: validate probabilities and labels once with [`Predictions::try_new`], then call
 //! the metric functions, or [`standard_report`] for the usual set with bootstrap intervals.
@@ -33,11 +37,15 @@ mod drift;
 #[cfg(test)]
 mod fixtures;
 mod ks_distribution;
+mod multinomial;
+mod order;
 mod predictions;
 mod replicate;
 mod scores;
 mod selective;
 mod standard;
+mod sweep;
+mod sweep_block;
 
 pub use bins::{reliability_diagram, EqualWidthBins, ReliabilityBin, DEFAULT_BINS, MAX_BINS};
 pub use bootstrap::{
@@ -52,6 +60,7 @@ pub use drift::{
     ks_two_sample, psi, psi_from_proportions, KsMethod, KsTest, Psi, PsiConfig, PSI_DEFAULT_BINS,
     PSI_EPSILON,
 };
+pub use multinomial::CHUNKED_RNG_NAME;
 pub use predictions::{Predictions, ROW_SUM_TOLERANCE};
 pub use scores::{accuracy, brier, brier_binary, nll, nll_from_logits, NLL_CLIP};
 pub use selective::{accept_stats, aurc, risk_coverage, AcceptStats, Aurc, RiskCoverage};

@@ -10,8 +10,8 @@
 //! distinct items have distinct confidences.
 
 use super::bins::{array_split_end, ece_of, mce_of, BinStats};
+use super::order::{ascending_order, descending_order};
 use super::scores::{item_brier, item_nll};
-use super::selective::descending_order;
 use super::standard::{StandardMetrics, StandardSettings};
 use super::Predictions;
 
@@ -36,6 +36,18 @@ pub(crate) struct Prepared<'p, 'a> {
 impl<'p, 'a> Prepared<'p, 'a> {
     /// Computes per-item losses and bins, and both stable orders.
     pub fn new(p: &'p Predictions<'a>, settings: &StandardSettings) -> Self {
+        let conf = p.confidence();
+        Self::with_orders(p, settings, descending_order(conf), ascending_order(conf))
+    }
+
+    /// As [`Prepared::new`], with the stable descending and ascending orders already known.
+    pub fn with_orders(
+        p: &'p Predictions<'a>,
+        settings: &StandardSettings,
+        descending: Vec<usize>,
+        ascending: Vec<usize>,
+    ) -> Self {
+        debug_assert_eq!((descending.len(), ascending.len()), (p.n(), p.n()));
         let bins = settings.bins();
         let labels = p.labels();
         let nll = (0..p.n()).map(|i| item_nll(p.row(i), labels[i])).collect();
@@ -47,10 +59,7 @@ impl<'p, 'a> Prepared<'p, 'a> {
         let top_bin = p.confidence().iter().map(|&c| to_bin(c)).collect();
         let class_bin = p.probs().iter().map(|&q| to_bin(q)).collect();
         let conf = p.confidence();
-        let descending = descending_order(conf);
         let descending_miss = descending.iter().map(|&i| !p.correct()[i]).collect();
-        let mut ascending: Vec<usize> = (0..p.n()).collect();
-        ascending.sort_by(|&a, &b| conf[a].total_cmp(&conf[b]));
         let ascending_conf = ascending.iter().map(|&i| conf[i]).collect();
         let ascending_hit = ascending.iter().map(|&i| p.correct()[i]).collect();
         Self {

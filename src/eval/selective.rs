@@ -2,6 +2,7 @@
 //! Uziel & El-Yaniv 2019; METHODS.md 3.9) and the accept-or-defer rule at a threshold
 //! (accept iff confidence ≥ θ; METHODS.md 3.10).
 
+use super::order::descending_order;
 use super::{EvalError, Predictions};
 use serde::Serialize;
 
@@ -28,13 +29,6 @@ pub struct Aurc {
     pub optimal: f64,
     /// E-AURC = AURC − AURC* (≥ 0 up to rounding).
     pub excess: f64,
-}
-
-/// Indices sorted by confidence descending; stable, so ties keep input order.
-pub(crate) fn descending_order(conf: &[f64]) -> Vec<usize> {
-    let mut order: Vec<usize> = (0..conf.len()).collect();
-    order.sort_by(|&a, &b| conf[b].total_cmp(&conf[a]));
-    order
 }
 
 /// The risk–coverage curve of the top-label confidences.

@@ -3,10 +3,12 @@
 //! bootstrap intervals computed in one evaluation per replicate (METHODS.md 1.9).
 
 use super::bins::DEFAULT_BINS;
-use super::bootstrap::{check_level, for_each_index, run_parallel, RNG_NAME};
+use super::bootstrap::check_level;
 use super::calibration::check_groups;
+use super::multinomial::{ChunkedMultinomial, CHUNKED_RNG_NAME, MAX_ITEMS};
 use super::replicate::Prepared;
 use super::selective::check_threshold;
+use super::sweep::Sweep;
 use super::{
     percentile_interval, BootstrapConfig, EqualWidthBins, EvalError, IndexMatrix, Predictions,
 };
@@ -162,32 +164,37 @@ pub fn standard_metrics(p: &Predictions<'_>, settings: &StandardSettings) -> Sta
     Prepared::new(p, settings).evaluate(&vec![1; p.n()], &mut Vec::new())
 }
 
-/// The standard set with percentile bootstrap intervals; replicate r resamples with stream
-/// (seed, r) exactly as [`super::bootstrap()`] does.
+/// The standard set with percentile bootstrap intervals. Replicate r is the multinomial
+/// bootstrap (n items drawn with replacement) with its counts drawn chunk by chunk from stream
+/// (seed, r) ([`CHUNKED_RNG_NAME`]), and all replicates are evaluated in blocks, one sweep over
+/// the items per block. Results depend on the seed only, not on the thread count.
 ///
 /// # Errors
-/// [`EvalError::Thread`] if a worker thread cannot start.
+/// [`EvalError::Setting`] for more than 2³² − 1 items; [`EvalError::Thread`] if a worker
+/// thread cannot start.
 pub fn standard_report(
     p: &Predictions<'_>,
     settings: &StandardSettings,
     config: &BootstrapConfig,
 ) -> Result<StandardReport, EvalError> {
-    let prepared = Prepared::new(p, settings);
-    let n = p.n();
-    let (seed, init) = (config.seed(), || (vec![0u32; n], Vec::with_capacity(n)));
-    let replicates = run_parallel(config.replicates(), config.threads(), init, |state, r| {
-        let (w, gathered) = state;
-        w.iter_mut().for_each(|c| *c = 0);
-        for_each_index(n, seed, r as u64, |i| w[i] += 1);
-        prepared.evaluate(w, gathered)
-    })?;
+    if p.n() > MAX_ITEMS {
+        return Err(EvalError::Setting {
+            what: "bootstrap item count",
+            value: p.n() as f64,
+            rule: "must be at most 4294967295",
+        });
+    }
+    let sweep = Sweep::new(p, settings);
+    let draw = ChunkedMultinomial::new(p.n(), config.seed());
+    let replicates = sweep.run(&draw, config.replicates(), config.threads())?;
     let info = BootstrapInfo {
         replicates: config.replicates(),
         level: config.level(),
-        seed: Some(seed),
-        rng: RNG_NAME,
+        seed: Some(config.seed()),
+        rng: CHUNKED_RNG_NAME,
     };
-    assemble(&prepared, settings, &replicates, info)
+    let point = sweep.prepared().evaluate(&vec![1; p.n()], &mut Vec::new());
+    assemble(point, settings, &replicates, info)
 }
 
 /// The standard set with intervals from injected resampling indices (e.g. made by numpy).
@@ -224,17 +231,17 @@ pub fn standard_report_with_indices(
         seed: None,
         rng: "injected index matrix",
     };
-    assemble(&prepared, settings, &replicates, info)
+    let point = prepared.evaluate(&vec![1; prepared.n()], &mut Vec::new());
+    assemble(point, settings, &replicates, info)
 }
 
 /// Point values plus one interval per metric from the replicate values.
 fn assemble(
-    prepared: &Prepared<'_, '_>,
+    point: StandardMetrics,
     settings: &StandardSettings,
     reps: &[StandardMetrics],
     info: BootstrapInfo,
 ) -> Result<StandardReport, EvalError> {
-    let point = prepared.evaluate(&vec![1; prepared.n()], &mut Vec::new());
     let level = info.level;
     let summary =
         |value: f64, get: fn(&StandardMetrics) -> f64| -> Result<MetricSummary, EvalError> {

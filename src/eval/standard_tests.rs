@@ -4,7 +4,7 @@
 use super::super::fixtures::{BOOT_INDICES, E3_LABELS, E3_PROBS, RANDOM_LABELS, RANDOM_PROBS};
 use super::super::replicate::Prepared;
 use super::super::{
-    accept_stats, accuracy, adaptive_ece, aurc, bootstrap, brier, classwise_ece, ece, mce, nll,
+    accept_stats, accuracy, adaptive_ece, aurc, brier, classwise_ece, ece, mce, nll,
 };
 use super::super::{BootstrapConfig, IndexMatrix, Predictions};
 use super::*;
@@ -176,7 +176,9 @@ fn replicates_without_accepted_items_are_skipped() {
 }
 
 #[test]
-fn rng_path_agrees_with_the_generic_bootstrap() {
+fn rng_path_is_seeded_and_independent_of_threads() {
+    // The replicate values themselves are checked against the weighted engine in
+    // sweep_tests.rs; here the report around them.
     let p = Predictions::try_new(&RANDOM_PROBS, 3, &RANDOM_LABELS).unwrap();
     let settings = StandardSettings::with_threshold(0.7).unwrap();
     let config = BootstrapConfig::try_new(200, 0.95, 99).unwrap();
@@ -186,23 +188,11 @@ fn rng_path_agrees_with_the_generic_bootstrap() {
         standard_report(&p, &settings, &config.with_threads(2)).unwrap()
     );
     assert_eq!(report.bootstrap.seed, Some(99));
-    // The generic bootstrap on the resampled rows (same streams) gives the same intervals.
-    let resampled_ece = bootstrap(p.n(), &config, |idx| {
-        let probs: Vec<f64> = idx.iter().flat_map(|&i| p.row(i).iter().copied()).collect();
-        let labels: Vec<u32> = idx.iter().map(|&i| p.labels()[i]).collect();
-        let q = Predictions::try_new(&probs, 3, &labels).ok()?;
-        Some(ece(&q, settings.bins()))
-    })
-    .unwrap();
-    let (low, high) = resampled_ece.interval(0.95).unwrap().unwrap();
-    assert!((report.ece.low - low).abs() < 1e-12 && (report.ece.high - high).abs() < 1e-12);
-    let correct = p.correct();
-    let resampled_acc = bootstrap(p.n(), &config, |idx| {
-        Some(idx.iter().filter(|&&i| correct[i]).count() as f64 / idx.len() as f64)
-    })
-    .unwrap();
-    let interval = resampled_acc.interval(0.95).unwrap().unwrap();
-    assert_eq!((report.accuracy.low, report.accuracy.high), interval);
+    assert_eq!(report.bootstrap.replicates, 200);
+    assert_eq!(standard_metrics(&p, &settings).ece, report.ece.value);
+    assert!(report.ece.low <= report.ece.value && report.ece.value <= report.ece.high);
+    let other = BootstrapConfig::try_new(200, 0.95, 100).unwrap();
+    assert_ne!(report, standard_report(&p, &settings, &other).unwrap());
 }
 
 /// Probability rows (some entries on quarter steps, so ties and exact bin edges occur), labels.

@@ -21,7 +21,10 @@
 //! Reading parses the bytes, then validates every field and collects every problem with its field
 //! path ([`MapError`]); a map that fails is never partly used. The same reader serves
 //! `candor check` and the sidecar. Writing goes through [`CalibrationMap::to_json`], which seals
-//! the document with its digest (see [`canonical`] for the canonical form).
+//! the document with its digest (see [`canonical`] for the canonical form). A document that says
+//! the same thing in another form than candor writes (`input` left to its default, `null` for an
+//! absent `per_class` or `evidence`, an integer beyond what f64 holds exactly) is kept as read,
+//! so writing the map back reproduces the content its digest seals.
 
 pub mod canonical;
 mod method_section;
@@ -53,6 +56,10 @@ pub struct CalibrationMap {
     policy: DecisionPolicy,
     provenance: Map<String, Value>,
     digest: String,
+    /// The document as read, kept only when candor would write these parts differently (a field
+    /// left to its default, `null` for an absent section, an integer f64 cannot hold exactly),
+    /// so that [`CalibrationMap::to_json`] reproduces the content its digest seals.
+    original: Option<Box<Value>>,
 }
 
 /// Why a map file was refused: every problem found, each with its field path.
@@ -175,8 +182,14 @@ impl CalibrationMap {
         Self::from_value(&doc)
     }
 
-    /// The sealed document, pretty-printed, ending with a newline.
+    /// The sealed document, pretty-printed, ending with a newline: the one its digest was
+    /// computed over, so the text always reads back as the same map with the same digest.
     pub fn to_json(&self) -> String {
+        if let Some(doc) = &self.original {
+            let mut s = serde_json::to_string_pretty(doc).unwrap_or_default();
+            s.push('\n');
+            return s;
+        }
         let mut doc = document(&MapParts {
             model: self.model.clone(),
             map_version: self.map_version.clone(),
@@ -340,7 +353,7 @@ fn read_document(r: &mut Reader<'_>, doc: &Value) -> Option<CalibrationMap> {
             );
         }
     }
-    Some(CalibrationMap {
+    let parts = MapParts {
         model: model?,
         map_version: map_version?,
         classes: k,
@@ -349,7 +362,22 @@ fn read_document(r: &mut Reader<'_>, doc: &Value) -> Option<CalibrationMap> {
         method: method?,
         policy: policy?,
         provenance: provenance?,
-        digest: digest?,
+    };
+    let digest = digest?;
+    // Parts written back must hash to the digest they were sealed with; when this document says
+    // the same thing in another form, keep it as it is.
+    let original = (canonical::digest(&document(&parts)) != digest).then(|| Box::new(doc.clone()));
+    Some(CalibrationMap {
+        model: parts.model,
+        map_version: parts.map_version,
+        classes: parts.classes,
+        class_names: parts.class_names,
+        input: parts.input,
+        method: parts.method,
+        policy: parts.policy,
+        provenance: parts.provenance,
+        digest,
+        original,
     })
 }
 

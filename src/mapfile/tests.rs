@@ -306,3 +306,37 @@ fn every_method_kind_round_trips() {
         assert_eq!(again.policy(), map.policy(), "{kind}");
     }
 }
+
+/// Found by the map_file fuzz target: a document without `input` validated (it defaults to
+/// logits), but `to_json` wrote `"input": "logits"` under the old digest, so the written map was
+/// refused. Other lenient forms behave the same way.
+#[test]
+fn lenient_documents_write_back_with_their_digest() {
+    let edits: [fn(&mut Value); 4] = [
+        |d| {
+            d.as_object_mut().unwrap().remove("input");
+        },
+        |d| d["policy"]["per_class"] = Value::Null,
+        |d| d["policy"]["evidence"]["expected_coverage"] = Value::Null,
+        // 2^53 + 1 as an integer: read as the f64 2^53, which the canonical form writes
+        // differently.
+        |d| d["method"]["temperature"] = json!(9007199254740993u64),
+    ];
+    for edit in edits {
+        let mut doc = valid();
+        edit(&mut doc);
+        let doc = seal(doc);
+        let map = CalibrationMap::from_value(&doc).unwrap();
+        let text = map.to_json();
+        let again = CalibrationMap::from_slice(text.as_bytes()).unwrap();
+        assert_eq!(again.digest(), map.digest(), "{text}");
+        assert_eq!(again.to_json(), text);
+        assert_eq!(again.input(), InputForm::Logits);
+    }
+    // A document in the form candor writes is written from its parts, byte for byte.
+    let text = CalibrationMap::from_value(&valid()).unwrap().to_json();
+    assert!(CalibrationMap::from_slice(text.as_bytes())
+        .unwrap()
+        .original
+        .is_none());
+}
