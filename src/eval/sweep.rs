@@ -171,9 +171,20 @@ impl<'p, 'a> Sweep<'p, 'a> {
         replicates: usize,
         threads: usize,
     ) -> Result<Vec<StandardMetrics>, EvalError> {
+        self.run_on(counts, replicates, threads, Arch::new())
+    }
+
+    /// [`Sweep::run`] compiled for the instruction set `arch` picks (tests pass
+    /// `Arch::Scalar` to compare with the vector paths).
+    fn run_on(
+        &self,
+        counts: &dyn ChunkCounts,
+        replicates: usize,
+        threads: usize,
+        arch: Arch,
+    ) -> Result<Vec<StandardMetrics>, EvalError> {
         let width = self.block_width(replicates, threads);
         let blocks = replicates.div_ceil(width);
-        let arch = Arch::new();
         let parts = run_parallel(
             blocks,
             threads,
