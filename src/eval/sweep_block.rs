@@ -74,6 +74,7 @@ pub(crate) struct Block {
 }
 
 impl Block {
+    /// Zeroed sums for `width` replicates over the items of `sweep`.
     pub fn new(width: usize, sweep: &Sweep<'_, '_>) -> Self {
         let (n, m, k, groups) = sweep.shape();
         let zeros = |cells: usize| vec![0.0; cells * width];
@@ -92,11 +93,6 @@ impl Block {
             group_ends,
             adaptive: vec![BinStats::default(); groups * width],
         }
-    }
-
-    /// Lanes per cell (the length of a weight vector): one per replicate.
-    pub fn stride(&self) -> usize {
-        self.width
     }
 
     /// Adds `item` with counts `wf` (as f64, one per lane) to the order-free sums.
