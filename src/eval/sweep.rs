@@ -6,7 +6,7 @@
 //! The items are stored once in "sweep order": confidence ascending, equal confidences by item
 //! index descending — exactly the reverse of the stable descending order of the risk–coverage
 //! curve. Replicate counts are drawn over sweep positions (any fixed relabelling of the items
-//! leaves the multinomial law unchanged). In one forward sweep:
+//! leaves the multinomial law unchanged). In one forward sweep, chunk by chunk:
 //! - the equal-width sums (accuracy, ECE, MCE, classwise ECE, NLL, Brier, coverage) do not
 //!   depend on order; they are kept as `[bin][replicate]` arrays, one short vector add per item;
 //! - AURC = (1/n) Σ_k E_k / k over the descending order equals (1/n) Σ over wrong copies of
@@ -39,9 +39,9 @@ pub(crate) const MAX_BLOCK: usize = 32;
 /// `[class][bin][replicate]` sums stay in a core's cache.
 const ACCUMULATOR_BUDGET_BYTES: usize = 512 * 1024;
 
-/// Most probabilities (n·K) copied into sweep order (512 MiB of f64), so that every block reads
-/// them in sequence rather than one scattered row at a time.
-const MAX_SORTED_VALUES: usize = 1 << 26;
+/// Most probabilities (n·K) copied into sweep order (128 MiB of f64), so that every block reads
+/// them in sequence rather than one scattered row at a time; larger sets are read in place.
+const MAX_SORTED_VALUES: usize = 1 << 24;
 
 /// Per-item data in sweep order, shared by every block.
 pub(crate) struct Sweep<'p, 'a> {
@@ -171,9 +171,20 @@ impl<'p, 'a> Sweep<'p, 'a> {
         replicates: usize,
         threads: usize,
     ) -> Result<Vec<StandardMetrics>, EvalError> {
+        self.run_on(counts, replicates, threads, Arch::new())
+    }
+
+    /// [`Sweep::run`] compiled for the instruction set `arch` picks (tests pass
+    /// `Arch::Scalar` to compare with the vector paths).
+    fn run_on(
+        &self,
+        counts: &dyn ChunkCounts,
+        replicates: usize,
+        threads: usize,
+        arch: Arch,
+    ) -> Result<Vec<StandardMetrics>, EvalError> {
         let width = self.block_width(replicates, threads);
         let blocks = replicates.div_ceil(width);
-        let arch = Arch::new();
         let parts = run_parallel(
             blocks,
             threads,
@@ -199,12 +210,10 @@ impl<'p, 'a> Sweep<'p, 'a> {
     fn replicates(&self, counts: &dyn ChunkCounts, reps: Range<usize>) -> Vec<StandardMetrics> {
         let (n, chunk, width) = (self.p.n(), counts.chunk_len(), reps.len());
         let mut block = Block::new(width, self);
-        let stride = block.stride();
         let totals: Vec<Vec<u64>> = reps.clone().map(|r| counts.totals(r)).collect();
         // The chunk's counts twice: `[item][lane]` for the sums, `[lane][item]` for the order.
-        let mut by_item = vec![0u32; chunk * stride];
-        let mut by_lane = vec![0u32; chunk * width];
-        let (mut scratch, mut wf) = (vec![0u32; chunk], vec![0.0; stride]);
+        let (mut by_item, mut by_lane) = (vec![0u32; chunk * width], vec![0u32; chunk * width]);
+        let (mut scratch, mut wf) = (vec![0u32; chunk], vec![0.0; width]);
         let order = Order {
             conf: &self.conf,
             hit: &self.hit,
@@ -212,17 +221,17 @@ impl<'p, 'a> Sweep<'p, 'a> {
         };
         for (c, start) in (0..n).step_by(chunk).enumerate() {
             let len = chunk.min(n - start);
-            let by_item = &mut by_item[..len * stride];
+            let by_item = &mut by_item[..len * width];
             let by_lane = &mut by_lane[..len * width];
             by_item.fill(0);
             by_lane.fill(0);
             for ((b, r), lane) in reps.clone().enumerate().zip(by_lane.chunks_exact_mut(len)) {
                 counts.fill(r, c, totals[b][c], &mut |j| {
-                    by_item[j * stride + b] += 1;
+                    by_item[j * width + b] += 1;
                     lane[j] += 1;
                 });
             }
-            for (j, w) in (start..start + len).zip(by_item.chunks_exact(stride)) {
+            for (j, w) in (start..start + len).zip(by_item.chunks_exact(width)) {
                 for (x, &c) in wf.iter_mut().zip(w) {
                     *x = f64::from(c);
                 }

@@ -1,8 +1,8 @@
 //! Running sums of one block of bootstrap replicates in the sweep engine (`sweep.rs`).
 //!
 //! The order-free sums (counts, Σ confidence, Σ correct per bin; NLL, Brier, coverage) are kept
-//! as `[cell][lane]` arrays with one lane per replicate, padded to whole groups of [`LANES`], so
-//! adding one item to every replicate is a few fixed-width vector operations. The
+//! as `[cell][lane]` arrays with one lane per replicate, so adding one item to every replicate is
+//! a few fixed-width vector operations (groups of [`LANES`]) and a short remainder. The
 //! order-dependent sums (AURC, equal-mass groups) follow each replicate's own positions, one
 //! replicate at a time, with a fast path for the common case of no group boundary crossed.
 
@@ -51,22 +51,18 @@ pub(crate) struct Order<'s> {
     pub tail: &'s [f64],
 }
 
-/// `tail[top − 1]`, or `tail[0]` when `top` is 0 (then multiplied by a zero count).
-#[inline(always)]
-fn tail_at(tail: &[f64], top: usize) -> f64 {
-    tail[top.saturating_sub(1)]
-}
+/// Copies of one item whose AURC terms are added without a branch (a multinomial count
+/// exceeds 4 about once in 270 items).
+const UNROLLED_COPIES: usize = 4;
 
 /// Running sums of up to [`super::sweep::MAX_BLOCK`] replicates.
 pub(crate) struct Block {
     /// Replicates in the block.
     pub width: usize,
-    /// Lanes per cell: `width` rounded up to whole [`LANES`].
-    stride: usize,
     n: usize,
-    /// Top-label count, Σ confidence, Σ correct at `[bin · stride + lane]`.
+    /// Top-label count, Σ confidence, Σ correct at `[bin · width + lane]`.
     top: [Vec<f64>; 3],
-    /// Per-class count, Σ q, Σ 1[y = k] at `[(k · bins + bin) · stride + lane]`.
+    /// Per-class count, Σ q, Σ 1[y = k] at `[(k · bins + bin) · width + lane]`.
     class: [Vec<f64>; 3],
     /// Correct, NLL, Brier, accepted, accepted and correct, at `[lane]`.
     scalars: [Vec<f64>; 5],
@@ -78,10 +74,10 @@ pub(crate) struct Block {
 }
 
 impl Block {
+    /// Zeroed sums for `width` replicates over the items of `sweep`.
     pub fn new(width: usize, sweep: &Sweep<'_, '_>) -> Self {
         let (n, m, k, groups) = sweep.shape();
-        let stride = width.div_ceil(LANES) * LANES;
-        let zeros = |cells: usize| vec![0.0; cells * stride];
+        let zeros = |cells: usize| vec![0.0; cells * width];
         let group_ends: Vec<usize> = (0..groups).map(|g| array_split_end(n, groups, g)).collect();
         let first = Lane {
             group_end: group_ends[0],
@@ -89,7 +85,6 @@ impl Block {
         };
         Self {
             width,
-            stride,
             n,
             top: [zeros(m), zeros(m), zeros(m)],
             class: [zeros(k * m), zeros(k * m), zeros(k * m)],
@@ -100,15 +95,10 @@ impl Block {
         }
     }
 
-    /// Lanes per cell (the length of a weight vector).
-    pub fn stride(&self) -> usize {
-        self.stride
-    }
-
-    /// Adds `item` with counts `wf` (as f64, `stride` lanes, padding 0) to the order-free sums.
+    /// Adds `item` with counts `wf` (as f64, one per lane) to the order-free sums.
     #[inline(always)]
     pub fn add_sums(&mut self, item: &Item<'_>, wf: &[f64], settings: &StandardSettings) {
-        let s = self.stride;
+        let s = self.width;
         let at = item.top_bin * s;
         add(&mut self.top[0][at..at + s], wf, 1.0);
         add(&mut self.top[1][at..at + s], wf, item.conf);
@@ -163,10 +153,16 @@ impl Block {
                 lane.tie_top = lane.pos + run_weight(runs[k]);
             }
             let (conf, hit, copies) = (order.conf[j], order.hit[j], count as usize);
-            // AURC: a wrong copy at sweep position p adds tail[n − p − 1] (none if count = 0).
+            // AURC: a wrong copy at sweep position p adds tail[n − p − 1]. The first
+            // UNROLLED_COPIES copies without a branch (counts are mostly 0, 1 or 2, at random),
+            // the rare rest in a loop.
             let top = n - lane.pos;
-            let mut tails = tail_at(order.tail, top) * f64::from(count.min(1));
-            for t in 1..copies {
+            let mut tails = 0.0;
+            for t in 0..UNROLLED_COPIES {
+                let present = f64::from(u8::from(copies > t));
+                tails += present * order.tail[top.saturating_sub(1 + t)];
+            }
+            for t in UNROLLED_COPIES..copies {
                 tails += order.tail[top - 1 - t];
             }
             lane.aurc += f64::from(u8::from(!hit)) * tails;
@@ -234,7 +230,7 @@ impl Block {
         let (n, nf, s, groups) = (
             self.n as u64,
             self.n as f64,
-            self.stride,
+            self.width,
             self.group_ends.len(),
         );
         let stats = |sums: &[Vec<f64>; 3], cells: usize, b: usize| -> Vec<BinStats> {
@@ -274,18 +270,18 @@ impl Block {
     }
 }
 
-/// `dst[lane] += w[lane] · a` over whole groups of [`LANES`] (both slices `stride` long), one
-/// fixed-size array at a time so each group is one vector operation.
+/// `dst[lane] += w[lane] · a` for every lane (both slices `width` long): whole groups of
+/// [`LANES`] as fixed-size arrays, so each group is one vector operation, then the rest.
 #[inline(always)]
 fn add(dst: &mut [f64], w: &[f64], a: f64) {
-    for (d, x) in dst
-        .as_chunks_mut::<LANES>()
-        .0
-        .iter_mut()
-        .zip(w.as_chunks::<LANES>().0)
-    {
+    let (dst_groups, dst_rest) = dst.as_chunks_mut::<LANES>();
+    let (w_groups, w_rest) = w.as_chunks::<LANES>();
+    for (d, x) in dst_groups.iter_mut().zip(w_groups) {
         for l in 0..LANES {
             d[l] += x[l] * a;
         }
+    }
+    for (d, &x) in dst_rest.iter_mut().zip(w_rest) {
+        *d += x * a;
     }
 }

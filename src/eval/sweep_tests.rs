@@ -131,6 +131,20 @@ fn real_draw_with_runs_spanning_chunks_matches_the_weighted_engine() {
 }
 
 #[test]
+fn every_instruction_set_gives_the_same_bits() {
+    // Lanes never mix and Rust never fuses a multiply and an add, so the AVX-512, AVX2 and
+    // baseline compilations agree exactly.
+    let (probs, labels) = tied_set(3000, 30, 5);
+    let p = Predictions::try_new(&probs, 3, &labels).unwrap();
+    let settings = StandardSettings::try_new(15, 15, 0.75).unwrap();
+    let sweep = Sweep::new(&p, &settings);
+    let draw = ChunkedMultinomial::new(p.n(), 17);
+    let widest = sweep.run(&draw, 37, 2).unwrap();
+    let scalar = sweep.run_on(&draw, 37, 2, pulp::Arch::Scalar).unwrap();
+    assert_eq!(widest, scalar);
+}
+
+#[test]
 fn report_intervals_come_from_the_swept_replicates() {
     let (probs, labels) = tied_set(3000, 40, 8);
     let p = Predictions::try_new(&probs, 3, &labels).unwrap();
