@@ -33,6 +33,7 @@ pub mod demo;
 pub mod eval;
 pub mod fit;
 pub mod journal;
+pub mod live;
 pub mod loadgen;
 pub mod mapfile;
 pub mod method;

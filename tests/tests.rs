@@ -4,6 +4,7 @@ mod cli;
 mod conformance;
 mod fuzz_corpus;
 mod journal;
+mod live;
 mod loadgen;
 mod offline;
 mod report;

@@ -9,7 +9,7 @@ use crate::eval::{standard_metrics, Predictions, StandardSettings};
 use crate::fit::histogram::{BinPrior, BinStrategy, HistogramOptions};
 use crate::fit::select::{choose, fit_choice, CandidateScore, Fitted, MethodChoice, Strength};
 use crate::fit::split::take_rows;
-use crate::mapfile::{CalibrationMap, MapParts};
+use crate::mapfile::{CalibrationMap, ConfidenceReference, MapParts};
 use crate::numeric::Logit;
 use anyhow::Context;
 use serde_json::{json, Map, Value};
@@ -193,6 +193,10 @@ pub(super) fn run(args: &FitArgs) -> anyhow::Result<ExitCode> {
         fit["selection"] = json!({"rule": "lowest 5-fold cross-validated NLL; ECE breaks ties within 1e-4", "candidates": c});
     }
     provenance.insert("fit".into(), fit);
+    provenance.insert(
+        "reference".into(),
+        reference_record(&set, &method, &policy.policy)?.to_value(),
+    );
     if let Some(record) = &policy.record {
         provenance.insert("certification".into(), record.clone());
     }
@@ -282,6 +286,33 @@ fn data_record(set: &LabelledSet, input: &InputArgs, rows_used: usize) -> Value 
         "class_counts": set.class_counts(),
         "source": source,
     })
+}
+
+/// The calibrated top-label confidences of every row and the share the policy accepts: what a
+/// running sidecar compares its live traffic with (METHODS.md 4.4).
+fn reference_record(
+    set: &LabelledSet,
+    method: &crate::method::Method,
+    policy: &crate::decision::DecisionPolicy,
+) -> anyhow::Result<ConfidenceReference> {
+    let k = set.classes();
+    let probs = super::inputs::apply_rows(method, set);
+    let mut accepted = 0;
+    let confidences: Vec<f64> = probs
+        .chunks_exact(k)
+        .map(|row| {
+            let class = crate::numeric::argmax(row);
+            let conf = row[class];
+            if policy.decide(class, conf) == crate::decision::Decision::Accept {
+                accepted += 1;
+            }
+            conf
+        })
+        .collect();
+    Ok(ConfidenceReference::from_confidences(
+        &confidences,
+        Some(accepted),
+    )?)
 }
 
 /// Before (softmax) and after metrics on the rows the map was fitted on.

@@ -12,6 +12,7 @@ mod maps;
 mod policy;
 mod report;
 mod serve;
+mod status;
 
 use clap::{Parser, Subcommand};
 
@@ -64,6 +65,9 @@ enum Command {
     Maps(maps::MapsArgs),
     /// Load a running sidecar in a closed loop: throughput and latency percentiles.
     Bench(Box<bench::BenchArgs>),
+    /// Show whether a running sidecar still keeps its maps' promises: live accuracy from the
+    /// audit sample, drift, automation rate (from its telemetry listener).
+    Status(status::StatusArgs),
 }
 
 /// Parses the process arguments and runs the command.
@@ -78,6 +82,7 @@ pub fn main() -> ExitCode {
         Command::Apply(args) => apply::run(&args),
         Command::Report(args) => report::run(&args),
         Command::Maps(args) => maps::run(&args),
+        Command::Status(args) => status::run(&args),
         Command::Bench(args) => bench::run(&args),
     };
     match result {

@@ -1,6 +1,7 @@
 //! `candor serve`: configuration parsed once, then the sidecar runs until SIGTERM or SIGINT.
 
-use crate::journal::{DecisionLog, JournalOptions};
+use crate::journal::{DecisionLog, JournalOptions, SpecLookup};
+use crate::live::{WindowSizes, WindowSpec};
 use crate::registry::{spawn_store_watcher, Registry, RegistryOptions, WatchOptions};
 use crate::server::{run as serve, run_admin, ServeOptions};
 use crate::service::AdminToken;
@@ -53,15 +54,15 @@ pub struct ServeArgs {
     )]
     telemetry_listen: Listen,
     /// Share of accepted items marked `audit = true` for a person to check as well, chosen from a
-    /// hash of the request id; in [0, 1].
+    /// hash of the request id; in [0, 1]. Overrides every map's `policy.audit_rate`; without it,
+    /// each map's own rate applies (0 when the map sets none).
     #[arg(
         long,
         env = "CANDOR_AUDIT_RATE",
-        default_value_t = 0.0,
         value_name = "SHARE",
         value_parser = parse_share
     )]
-    audit_rate: f64,
+    audit_rate: Option<f64>,
     /// Directory of the decision journal (decisions and outcomes, JSON Lines, rotated by size).
     /// Without it, outcomes are still joined to recent decisions but nothing is written.
     #[arg(long, env = "CANDOR_JOURNAL_DIR", value_name = "DIR")]
@@ -89,6 +90,15 @@ pub struct ServeArgs {
         value_name = "N"
     )]
     remember_decisions: usize,
+    /// Most recent decisions per (model, map version) behind the live automation rate and drift
+    /// (`/status`, `candor status` and the candor_live_* gauges).
+    #[arg(long, env = "CANDOR_QUALITY_WINDOW", default_value_t = crate::live::DEFAULT_WINDOW_DECISIONS,
+          value_name = "N")]
+    quality_window: usize,
+    /// Most recent labelled items per (model, map version) behind the live accuracy estimates.
+    #[arg(long, env = "CANDOR_QUALITY_LABELS", default_value_t = crate::live::DEFAULT_WINDOW_LABELS,
+          value_name = "N")]
+    quality_labels: usize,
     /// File holding the admin bearer token (surrounding whitespace ignored).
     #[arg(long, env = "CANDOR_ADMIN_TOKEN_FILE", value_name = "PATH")]
     admin_token_file: Option<PathBuf>,
@@ -252,20 +262,36 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
     let r = registry.clone();
     let view = tokio::task::spawn_blocking(move || r.rescan()).await?;
     let stats = Arc::new(RpcStats::default());
-    let journal = DecisionLog::spawn(JournalOptions {
-        dir: args.journal_dir.clone(),
-        max_file_bytes: args.journal_max_mib * 1024 * 1024,
-        keep_files: usize::try_from(args.journal_keep).unwrap_or(usize::MAX),
-        fsync: args.journal_fsync,
-        logits: !args.journal_without_logits,
-        remember: args.remember_decisions,
-        ..JournalOptions::default()
-    })
+    let lookup = registry.clone();
+    let spec: SpecLookup = Arc::new(move |model: &str, version: &str| {
+        lookup.with_snapshot(|s| {
+            s.version(model, version)
+                .map_or_else(WindowSpec::default, |m| {
+                    WindowSpec::of(&m.map).with_audit_rate(m.audit_rate)
+                })
+        })
+    });
+    let journal = DecisionLog::spawn_watched(
+        JournalOptions {
+            dir: args.journal_dir.clone(),
+            max_file_bytes: args.journal_max_mib * 1024 * 1024,
+            keep_files: usize::try_from(args.journal_keep).unwrap_or(usize::MAX),
+            fsync: args.journal_fsync,
+            logits: !args.journal_without_logits,
+            remember: args.remember_decisions,
+            windows: WindowSizes {
+                decisions: args.quality_window,
+                labels: args.quality_labels,
+            },
+            ..JournalOptions::default()
+        },
+        spec,
+    )
     .context("starting the decision journal")?;
     if let Some(d) = &args.journal_dir {
         tracing::info!(dir = %d.display(), fsync = args.journal_fsync, "journal open");
     }
-    let journal_stats = journal.stats().clone();
+    let live = journal.clone();
     let options = ServeOptions {
         grace_period: Duration::from_secs(args.grace_period_secs),
         stats: stats.clone(),
@@ -280,7 +306,7 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
             tracing::info!(addr = %l.local_addr()?, "telemetry listening");
             Some(tokio::spawn(run_telemetry(
                 l,
-                Telemetry::new(registry.clone(), stats.clone()).with_journal(journal_stats),
+                Telemetry::new(registry.clone(), stats.clone()).with_live(live),
                 stopped(stop_rx.clone()),
             )))
         }

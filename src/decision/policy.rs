@@ -53,6 +53,7 @@ pub struct DecisionPolicy {
     global: Option<f64>,
     per_class: Option<Vec<Option<f64>>>,
     evidence: Option<Evidence>,
+    audit_rate: Option<f64>,
 }
 
 impl DecisionPolicy {
@@ -68,7 +69,21 @@ impl DecisionPolicy {
             global,
             per_class,
             evidence,
+            audit_rate: None,
         }
+    }
+
+    /// The same policy with a share of accepted items to mark for audit (in [0, 1], checked by
+    /// the map-file reader).
+    pub fn with_audit_rate(mut self, rate: Option<f64>) -> Self {
+        debug_assert!(rate.is_none_or(|a| (0.0..=1.0).contains(&a)));
+        self.audit_rate = rate;
+        self
+    }
+
+    /// Share of accepted items the map asks to mark for audit, when it sets one.
+    pub fn audit_rate(&self) -> Option<f64> {
+        self.audit_rate
     }
 
     /// A policy accepting when confidence ≥ `threshold` for every class, with no evidence.

@@ -4,7 +4,7 @@ use crate::decision::certify::sgr;
 use crate::decision::{DecisionPolicy, Evidence};
 use crate::fit::split::{stratified_holdout, take_rows};
 use crate::fit::temperature::{fit, Rows};
-use crate::mapfile::{CalibrationMap, MapError, MapParts};
+use crate::mapfile::{CalibrationMap, ConfidenceReference, MapError, MapParts};
 use crate::method::{InputForm, Method};
 use crate::numeric::lse;
 use rand::{Rng, SeedableRng};
@@ -37,6 +37,8 @@ pub const TARGET_ACCURACY: f64 = 0.95;
 pub const CONFIDENCE: f64 = 0.95;
 /// Share of the labelled letters held out to certify the threshold on.
 pub const HOLDOUT: f64 = 0.3;
+/// Share of accepted letters the demo map marks for audit (a person checks them too).
+pub const AUDIT_RATE: f64 = 0.05;
 const SPLIT_SEED: u64 = 7;
 /// Labelled letters held out for fitting.
 pub const CALIBRATION_ROWS: usize = 2_000;
@@ -165,6 +167,11 @@ pub fn fit_demo_map(cal: &Letters) -> Result<CalibrationMap, MapError> {
     }
     let cert = sgr(&conf, &correct, 1.0 - TARGET_ACCURACY, 1.0 - CONFIDENCE)
         .map_err(|e| fail(e.to_string()))?;
+    let accepted = cert
+        .threshold
+        .map_or(0, |t| conf.iter().filter(|&&c| c >= t).count());
+    let reference = ConfidenceReference::from_confidences(&conf, Some(accepted))
+        .map_err(|e| fail(e.to_string()))?;
     let mut provenance = Map::new();
     provenance.insert("created_at".into(), json!("2026-12-01T00:00:00Z"));
     provenance.insert(
@@ -184,6 +191,7 @@ pub fn fit_demo_map(cal: &Letters) -> Result<CalibrationMap, MapError> {
         "certification".into(),
         serde_json::to_value(&cert).unwrap_or_default(),
     );
+    provenance.insert("reference".into(), reference.to_value());
     let evidence = Evidence {
         procedure: Some("sgr".into()),
         target_accuracy: Some(TARGET_ACCURACY),
@@ -206,7 +214,8 @@ pub fn fit_demo_map(cal: &Letters) -> Result<CalibrationMap, MapError> {
         class_names: Some(CLASS_NAMES.iter().map(|s| (*s).to_owned()).collect()),
         input: InputForm::Logits,
         method: Method::Temperature(t),
-        policy: DecisionPolicy::new(cert.threshold, None, Some(evidence)),
+        policy: DecisionPolicy::new(cert.threshold, None, Some(evidence))
+            .with_audit_rate(Some(AUDIT_RATE)),
         provenance,
     })
 }

@@ -32,6 +32,10 @@ pub enum Record {
         accepted: bool,
         /// True when marked for audit.
         audit: bool,
+        /// The audit rate π in force for this map version: an accepted item was marked for
+        /// audit with this probability (METHODS.md 4.1).
+        #[serde(default)]
+        audit_rate: f64,
         /// The raw logits, when the journal keeps them.
         #[serde(default, skip_serializing_if = "Option::is_none")]
         logits: Option<Vec<f32>>,
@@ -193,6 +197,7 @@ mod tests {
             confidence: 0.75,
             accepted: true,
             audit: false,
+            audit_rate: 0.05,
             logits: Some(vec![1.0, -2.5]),
         }
     }

@@ -12,4 +12,6 @@ mod file;
 mod writer;
 
 pub use file::{read_journal, JournalRead, Record};
-pub use writer::{Decided, DecisionLog, JournalOptions, JournalStats, OutcomeAck, OutcomeError};
+pub use writer::{
+    Decided, DecisionLog, JournalOptions, JournalStats, OutcomeAck, OutcomeError, SpecLookup,
+};

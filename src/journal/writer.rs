@@ -1,6 +1,8 @@
 //! The writer thread: the table of recent decisions (for joining outcomes) and the journal.
 
 use super::file::{JournalFiles, Record};
+use crate::live::{LabelledDecision, LiveQuality, Tracker, WindowSizes, WindowSpec};
+use arc_swap::ArcSwap;
 use std::collections::{HashMap, VecDeque};
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -33,6 +35,8 @@ pub struct JournalOptions {
     pub remember: usize,
     /// How long a decision can be joined to its outcome.
     pub retention: Duration,
+    /// Sliding windows of the live quality estimates.
+    pub windows: WindowSizes,
 }
 
 impl Default for JournalOptions {
@@ -46,6 +50,7 @@ impl Default for JournalOptions {
             queue: 65_536,
             remember: 1_000_000,
             retention: Duration::from_secs(7 * 24 * 3600),
+            windows: WindowSizes::default(),
         }
     }
 }
@@ -146,7 +151,12 @@ enum Entry {
         label: u32,
         reply: oneshot::Sender<Result<OutcomeAck, OutcomeError>>,
     },
+    /// Publish the live quality now and say when done.
+    Refresh(oneshot::Sender<()>),
 }
+
+/// What the writer needs to know about a (model, map version) the first time it sees one.
+pub type SpecLookup = Arc<dyn Fn(&str, &str) -> WindowSpec + Send + Sync>;
 
 /// Handle to the decision log; cheap to clone.
 #[derive(Debug, Clone)]
@@ -155,6 +165,7 @@ pub struct DecisionLog {
     tx: SyncSender<Entry>,
     stats: Arc<JournalStats>,
     logits: bool,
+    live: Arc<ArcSwap<Vec<LiveQuality>>>,
 }
 
 impl std::fmt::Debug for Entry {
@@ -175,6 +186,15 @@ impl DecisionLog {
     /// # Errors
     /// When the journal directory cannot be created or its first file opened.
     pub fn spawn(options: JournalOptions) -> std::io::Result<Self> {
+        Self::spawn_watched(options, Arc::new(|_: &str, _: &str| WindowSpec::default()))
+    }
+
+    /// Starts the writer thread; `spec` tells the live-quality windows about each map version
+    /// (its fit-time reference, its promise, its audit rate).
+    ///
+    /// # Errors
+    /// When the journal directory cannot be created or its first file opened.
+    pub fn spawn_watched(options: JournalOptions, spec: SpecLookup) -> std::io::Result<Self> {
         let files = match &options.dir {
             Some(d) => Some(JournalFiles::open(
                 d,
@@ -186,18 +206,42 @@ impl DecisionLog {
         let (tx, rx) = sync_channel(options.queue.max(1));
         let stats = Arc::new(JournalStats::default());
         let logits = options.logits;
+        let live = Arc::new(ArcSwap::from_pointee(Vec::new()));
         let mut w = Writer {
             rx,
             files,
+            tracker: Tracker::new(options.windows),
             options,
             stats: stats.clone(),
             recent: HashMap::new(),
             order: VecDeque::new(),
+            spec,
+            live: live.clone(),
         };
         std::thread::Builder::new()
             .name("candor-journal".into())
             .spawn(move || w.run())?;
-        Ok(DecisionLog { tx, stats, logits })
+        Ok(DecisionLog {
+            tx,
+            stats,
+            logits,
+            live,
+        })
+    }
+
+    /// The live quality of every (model, map version) as last published by the writer.
+    pub fn live(&self) -> Arc<Vec<LiveQuality>> {
+        self.live.load_full()
+    }
+
+    /// Asks the writer to publish the live quality now (after everything queued before this
+    /// call) and returns it; when the writer is behind, the last published one.
+    pub async fn live_now(&self) -> Arc<Vec<LiveQuality>> {
+        let (tx, rx) = oneshot::channel();
+        if self.tx.try_send(Entry::Refresh(tx)).is_ok() {
+            let _ = rx.await;
+        }
+        self.live()
     }
 
     /// The log's counters.
@@ -217,6 +261,8 @@ impl DecisionLog {
             confidence: d.confidence,
             accepted: d.accepted,
             audit: d.audit,
+            // Filled in by the writer, which knows each version's audit rate.
+            audit_rate: 0.0,
             logits: self.logits.then(|| d.logits.to_vec()),
         };
         if self.tx.try_send(Entry::Decision(r, d.classes)).is_err() {
@@ -253,6 +299,7 @@ struct Recent {
     map_version: String,
     classes: u32,
     predicted: u32,
+    confidence: f32,
     accepted: bool,
     audit: bool,
     label: Option<u32>,
@@ -266,6 +313,9 @@ struct Writer {
     recent: HashMap<String, Recent>,
     /// Request ids in arrival order, for forgetting the oldest.
     order: VecDeque<(u64, String)>,
+    tracker: Tracker,
+    spec: SpecLookup,
+    live: Arc<ArcSwap<Vec<LiveQuality>>>,
 }
 
 type Reply = (
@@ -309,18 +359,29 @@ impl Writer {
 
     fn take(&mut self, entry: Entry, buf: &mut Vec<u8>, lines: &mut u64, replies: &mut Vec<Reply>) {
         match entry {
-            Entry::Decision(r, classes) => {
+            Entry::Refresh(done) => {
+                self.live.store(Arc::new(self.tracker.report()));
+                let _ = done.send(());
+            }
+            Entry::Decision(mut r, classes) => {
                 if let Record::Decision {
                     at_ms,
                     request_id,
                     model,
                     map_version,
                     predicted,
+                    confidence,
                     accepted,
                     audit,
+                    audit_rate,
                     ..
-                } = &r
+                } = &mut r
                 {
+                    self.tracker
+                        .decision(model, map_version, *confidence, *accepted, &*self.spec);
+                    if let Some(s) = self.tracker.spec(model, map_version) {
+                        *audit_rate = s.audit_rate;
+                    }
                     if !request_id.is_empty() {
                         self.order.push_back((*at_ms, request_id.clone()));
                         self.recent.insert(
@@ -331,6 +392,7 @@ impl Writer {
                                 map_version: map_version.clone(),
                                 classes,
                                 predicted: *predicted,
+                                confidence: *confidence,
                                 accepted: *accepted,
                                 audit: *audit,
                                 label: None,
@@ -386,6 +448,17 @@ impl Writer {
                     }
                     None => d.label = Some(label),
                 }
+                self.tracker.outcome(
+                    &d.model,
+                    &d.map_version,
+                    LabelledDecision {
+                        confidence: f64::from(d.confidence),
+                        correct: d.predicted == label,
+                        accepted: d.accepted,
+                        audit: d.audit,
+                    },
+                    &*self.spec,
+                );
                 if self.files.is_some() {
                     push_line(
                         buf,

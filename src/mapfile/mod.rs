@@ -29,7 +29,10 @@
 pub mod canonical;
 mod method_section;
 mod read;
+mod reference;
 mod sections;
+
+pub use reference::{ConfidenceReference, PROPORTION_SUM_TOLERANCE};
 
 pub use method_section::KINDS;
 
@@ -56,6 +59,8 @@ pub struct CalibrationMap {
     policy: DecisionPolicy,
     provenance: Map<String, Value>,
     digest: String,
+    /// `provenance.reference`, validated: the fit-time confidence distribution.
+    reference: Option<ConfidenceReference>,
     /// The document as read, kept only when candor would write these parts differently (a field
     /// left to its default, `null` for an absent section, an integer f64 cannot hold exactly),
     /// so that [`CalibrationMap::to_json`] reproduces the content its digest seals.
@@ -246,6 +251,11 @@ impl CalibrationMap {
     pub fn digest(&self) -> &str {
         &self.digest
     }
+    /// The fit-time distribution of calibrated confidences (`provenance.reference`), when the
+    /// map carries one.
+    pub fn reference(&self) -> Option<&ConfidenceReference> {
+        self.reference.as_ref()
+    }
 }
 
 /// The unsealed JSON document of `parts`.
@@ -335,6 +345,10 @@ fn read_document(r: &mut Reader<'_>, doc: &Value) -> Option<CalibrationMap> {
     let provenance = r
         .required(obj, "provenance", "")
         .and_then(|v| sections::read_provenance(r, v));
+    let reference = provenance
+        .as_ref()
+        .and_then(|p| p.get("reference"))
+        .map(|v| reference::read(r, v));
     let digest = r.string_field(obj, "digest", "").map(str::to_owned);
     // Sections whose shape depends on K are read only once K is known.
     let k = classes?;
@@ -377,6 +391,7 @@ fn read_document(r: &mut Reader<'_>, doc: &Value) -> Option<CalibrationMap> {
         policy: parts.policy,
         provenance: parts.provenance,
         digest,
+        reference: reference.flatten(),
         original,
     })
 }

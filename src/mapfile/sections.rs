@@ -53,11 +53,16 @@ pub(super) fn read_class_names(
 }
 
 /// Reads `policy`: `threshold` (number in [0, 1] or null), optional `per_class` (K entries, each a
-/// number in [0, 1] or null) and optional `evidence`.
+/// number in [0, 1] or null), optional `audit_rate` (share of accepted items marked for audit, in
+/// [0, 1]) and optional `evidence`.
 pub(super) fn read_policy(r: &mut Reader<'_>, v: &Value, classes: usize) -> Option<DecisionPolicy> {
     const P: &str = "policy";
     let obj = r.object(v, P)?;
-    r.deny_unknown(obj, &["threshold", "per_class", "evidence"], P);
+    r.deny_unknown(
+        obj,
+        &["threshold", "per_class", "audit_rate", "evidence"],
+        P,
+    );
     let before = r.problems.len();
     let global = r
         .required(obj, "threshold", P)
@@ -78,7 +83,20 @@ pub(super) fn read_policy(r: &mut Reader<'_>, v: &Value, classes: usize) -> Opti
         None | Some(Value::Null) => None,
         Some(e) => read_evidence(r, e),
     };
-    (r.problems.len() == before).then(|| DecisionPolicy::new(global, per_class, evidence))
+    let audit_rate = match obj.get("audit_rate") {
+        None | Some(Value::Null) => None,
+        Some(a) => r.number(a, "policy.audit_rate").and_then(|a| {
+            if (0.0..=1.0).contains(&a) {
+                Some(a)
+            } else {
+                r.problems
+                    .push("policy.audit_rate", format!("must lie in [0, 1], got {a}"));
+                None
+            }
+        }),
+    };
+    (r.problems.len() == before)
+        .then(|| DecisionPolicy::new(global, per_class, evidence).with_audit_rate(audit_rate))
 }
 
 /// A threshold: a number in [0, 1], or null for "no auto-accept".
@@ -152,6 +170,9 @@ pub(super) fn write_policy(p: &DecisionPolicy) -> Value {
     obj.insert("threshold".into(), json!(p.global_threshold()));
     if let Some(list) = p.per_class() {
         obj.insert("per_class".into(), json!(list));
+    }
+    if let Some(a) = p.audit_rate() {
+        obj.insert("audit_rate".into(), json!(a));
     }
     if let Some(e) = p.evidence() {
         obj.insert(

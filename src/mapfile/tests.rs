@@ -340,3 +340,62 @@ fn lenient_documents_write_back_with_their_digest() {
         .original
         .is_none());
 }
+
+#[test]
+fn audit_rate_and_reference_are_read_checked_and_written_back() {
+    let mut doc = valid();
+    doc["policy"]["audit_rate"] = json!(0.05);
+    doc["provenance"]["reference"] = json!({"items": 4, "edges": [0.6, 0.9],
+        "proportions": [0.25, 0.25, 0.5], "accept_rate": 0.5, "mean_confidence": 0.8});
+    let doc = seal(doc);
+    let map = CalibrationMap::from_value(&doc).unwrap();
+    assert_eq!(map.policy().audit_rate(), Some(0.05));
+    let r = map.reference().unwrap();
+    assert_eq!(
+        (r.items, r.edges.len(), r.bin_of(0.6), r.bin_of(0.61)),
+        (4, 2, 0, 1)
+    );
+    assert_eq!(r.bin_of(0.95), 2);
+    let back = CalibrationMap::from_slice(map.to_json().as_bytes()).unwrap();
+    assert_eq!(back.digest(), map.digest());
+    assert_eq!(back.reference(), map.reference());
+    assert_eq!(back.policy().audit_rate(), Some(0.05));
+
+    let found = problems_after(|d| d["policy"]["audit_rate"] = json!(1.5));
+    assert_problem(&found, "policy.audit_rate", "must lie in [0, 1], got 1.5");
+    let found = problems_after(|d| {
+        d["provenance"]["reference"] =
+            json!({"items": 4, "edges": [0.9, 0.6], "proportions": [0.25, 0.25, 0.4]})
+    });
+    assert_problem(
+        &found,
+        "provenance.reference.edges[1]",
+        "strictly ascending",
+    );
+    assert_problem(&found, "provenance.reference.proportions", "must sum to 1");
+    let found = problems_after(|d| {
+        d["provenance"]["reference"] = json!({"items": 4, "edges": [0.5], "proportions": [1.0]})
+    });
+    assert_problem(
+        &found,
+        "provenance.reference.proportions",
+        "one entry more than edges (2), got 1",
+    );
+    let found = problems_after(|d| {
+        d["provenance"]["reference"] =
+            json!({"items": 4, "edges": [], "proportions": [1.0], "drift": 1})
+    });
+    assert_problem(&found, "provenance.reference.drift", "unknown field");
+}
+
+#[test]
+fn a_reference_of_tied_confidences_keeps_one_bin_per_distinct_edge() {
+    // Quantiles of {0.5 ×5, 0.9 ×5} at b/10 (numpy 'linear' rule): 0.5 for b ≤ 4, 0.7 at b = 5
+    // (halfway), 0.9 for b ≥ 6 — three distinct edges (closed form).
+    let conf: Vec<f64> = [0.5; 5].iter().chain(&[0.9; 5]).copied().collect();
+    let r = ConfidenceReference::from_confidences(&conf, Some(5)).unwrap();
+    assert_eq!(r.edges, vec![0.5, 0.7, 0.9]);
+    assert_eq!(r.proportions, vec![0.5, 0.0, 0.5, 0.0]);
+    assert_eq!(r.accept_rate, Some(0.5));
+    assert!((r.mean_confidence.unwrap() - 0.7).abs() < 1e-15);
+}

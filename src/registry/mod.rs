@@ -70,8 +70,8 @@ impl DecisionCounters {
 #[derive(Debug, Clone, Copy, Default)]
 pub struct RegistryOptions {
     /// Share of accepted items, chosen from a hash of the request id, marked for audit; in
-    /// [0, 1].
-    pub audit_rate: f64,
+    /// [0, 1]. `None`: each map's own `policy.audit_rate` (0 when it sets none).
+    pub audit_rate: Option<f64>,
 }
 
 /// An immutable routing table: one [`ModelRoute`] per model.
@@ -137,6 +137,11 @@ impl Snapshot {
             model: model.to_owned(),
             known,
         })
+    }
+
+    /// A loaded version of a model (active, canary, shadow or any other loaded version).
+    pub fn version(&self, model: &str, version: &str) -> Option<&Arc<ServedMap>> {
+        self.by_model.get(model)?.versions.get(version)
     }
 
     /// The active map of every model, sorted by model name.

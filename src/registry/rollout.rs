@@ -279,7 +279,7 @@ pub(super) struct Rollout {
     /// Refused files at the latest scan that belong to no served model.
     unserved: usize,
     /// Audit cut given to every map loaded.
-    audit_cut: u128,
+    audit_override: Option<f64>,
     last_dir_error: Option<String>,
 }
 
@@ -340,13 +340,14 @@ impl Rollout {
             rejections_total: 0,
             publishes_total: 0,
             unserved: 0,
-            audit_cut: 0,
+            audit_override: None,
             last_dir_error: None,
         }
     }
 
-    pub(super) fn set_audit_rate(&mut self, rate: f64) {
-        self.audit_cut = cut_for(rate);
+    /// The audit rate for every map, overriding the maps' own `policy.audit_rate`.
+    pub(super) fn set_audit_rate(&mut self, rate: Option<f64>) {
+        self.audit_override = rate;
     }
 
     pub(super) fn store_dir(&self) -> Option<&Path> {
@@ -369,10 +370,15 @@ impl Rollout {
     fn served(&mut self, map: CalibrationMap) -> Arc<ServedMap> {
         let key = (map.model().to_owned(), map.map_version().to_owned());
         let counters = self.counters.entry(key).or_default().clone();
+        let audit_rate = self
+            .audit_override
+            .or(map.policy().audit_rate())
+            .unwrap_or(0.0);
         Arc::new(ServedMap {
             map,
             counters,
-            audit_cut: self.audit_cut,
+            audit_cut: cut_for(audit_rate),
+            audit_rate,
         })
     }
 

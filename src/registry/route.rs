@@ -33,6 +33,9 @@ pub struct ServedMap {
     pub counters: Arc<DecisionCounters>,
     /// Accepted items whose request-id hash falls below this cut are marked for audit.
     pub audit_cut: u128,
+    /// The share of accepted items marked for audit (the audit probability π of METHODS.md 4.1),
+    /// from the serve flag or else the map's `policy.audit_rate`.
+    pub audit_rate: f64,
 }
 
 impl ServedMap {
@@ -254,6 +257,7 @@ mod tests {
             .unwrap(),
             counters: Arc::default(),
             audit_cut: 0,
+            audit_rate: 0.0,
         }
     }
 }

@@ -1,4 +1,5 @@
-//! The telemetry listener: `GET /metrics` (Prometheus), `/ready` and `/live` for probes.
+//! The telemetry listener: `GET /metrics` (Prometheus), `/ready` and `/live` for probes,
+//! `/status` (the live quality as JSON, read by `candor status`).
 
 use super::Telemetry;
 use axum::extract::State;
@@ -14,7 +15,42 @@ use tokio::net::TcpListener;
 const METRICS_CONTENT_TYPE: &str = "application/openmetrics-text; version=1.0.0; charset=utf-8";
 
 async fn metrics(State(t): State<Telemetry>) -> impl IntoResponse {
+    if let Some(log) = t.live() {
+        log.live_now().await;
+    }
     ([(header::CONTENT_TYPE, METRICS_CONTENT_TYPE)], t.encode())
+}
+
+/// The live quality of every (model, map version) as JSON, with each window's verdict in
+/// words: what `candor status` shows.
+async fn status(State(t): State<Telemetry>) -> impl IntoResponse {
+    let windows = match t.live() {
+        Some(log) => log.live_now().await,
+        None => std::sync::Arc::new(Vec::new()),
+    };
+    let body: Vec<StatusEntry<'_>> = windows
+        .iter()
+        .map(|q| StatusEntry {
+            verdict: crate::live::verdict_lines(q),
+            quality: q,
+        })
+        .collect();
+    let doc = serde_json::json!({
+        "ready": t.registry().is_ready(),
+        "windows": body,
+    });
+    (
+        [(header::CONTENT_TYPE, "application/json")],
+        serde_json::to_string_pretty(&doc).unwrap_or_default(),
+    )
+}
+
+/// One window in `/status`.
+#[derive(serde::Serialize)]
+struct StatusEntry<'a> {
+    #[serde(flatten)]
+    quality: &'a crate::live::LiveQuality,
+    verdict: Vec<String>,
 }
 
 /// 200 once every model has a valid active map; 503 before, with the reasons in the body.
@@ -47,6 +83,7 @@ pub fn router(telemetry: Telemetry) -> Router {
         .route("/metrics", get(metrics))
         .route("/ready", get(ready))
         .route("/live", get(live))
+        .route("/status", get(status))
         .with_state(telemetry)
 }
 

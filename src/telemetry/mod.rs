@@ -6,10 +6,11 @@
 //! decision, status code, never a request id.
 
 mod http;
+mod live;
 
 pub use http::{router, run_telemetry};
 
-use crate::journal::JournalStats;
+use crate::journal::{DecisionLog, JournalStats};
 use crate::registry::Registry;
 use prometheus_client::collector::Collector;
 use prometheus_client::encoding::{DescriptorEncoder, EncodeMetric};
@@ -87,6 +88,7 @@ pub struct Telemetry {
     registry: Arc<Registry>,
     stats: Arc<RpcStats>,
     journal: Option<Arc<JournalStats>>,
+    live: Option<DecisionLog>,
 }
 
 impl Telemetry {
@@ -96,7 +98,21 @@ impl Telemetry {
             registry,
             stats,
             journal: None,
+            live: None,
         }
+    }
+
+    /// Also report the live quality windows of `log` (and its journal counters).
+    #[must_use]
+    pub fn with_live(mut self, log: DecisionLog) -> Self {
+        self.journal = Some(log.stats().clone());
+        self.live = Some(log);
+        self
+    }
+
+    /// The decision log whose live quality is reported, if any.
+    pub fn live(&self) -> Option<&DecisionLog> {
+        self.live.as_ref()
     }
 
     /// Also report the decision journal's counters.
@@ -283,6 +299,9 @@ impl Collector for Telemetry {
                     MetricType::Counter,
                 )?)?;
             }
+        }
+        if let Some(log) = &self.live {
+            live::encode(&mut encoder, &log.live())?;
         }
         ConstGauge::new(i64::from(self.registry.is_ready())).encode(encoder.encode_descriptor(
             "ready",
