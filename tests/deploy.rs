@@ -380,4 +380,5 @@ fn a_renamed_flag_is_refused() {
         .is_ok());
 }
 
+mod configmap;
 mod hosts;
