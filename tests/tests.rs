@@ -2,6 +2,7 @@
 
 mod cli;
 mod conformance;
+mod deploy;
 mod fuzz_corpus;
 mod journal;
 mod live;
