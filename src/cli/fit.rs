@@ -16,11 +16,19 @@ use serde_json::{json, Map, Value};
 use std::path::PathBuf;
 use std::process::ExitCode;
 
+#[path = "fit_journal.rs"]
+mod from_journal;
+
 /// Arguments of `candor fit`.
 #[derive(Debug, clap::Args)]
 pub struct FitArgs {
     #[command(flatten)]
     input: InputArgs,
+    /// Refit from a sidecar's decision journal (its --journal-dir) instead of a data file:
+    /// decisions of --model with logits and a returned label; deferred items weigh 1, audited
+    /// accepted items 1/audit rate, other accepted items are left out (METHODS.md 4.1–4.2).
+    #[arg(long, value_name = "DIR", conflicts_with_all = ["logits", "data"])]
+    journal: Option<PathBuf>,
     /// Recalibration method; `auto` compares the methods that suit the data size and K by
     /// 5-fold cross-validated NLL (ECE breaks ties) and records every candidate's score.
     #[arg(long, value_enum, default_value = "temperature")]
@@ -133,6 +141,9 @@ fn fit_on<L: Logit>(
 }
 
 pub(super) fn run(args: &FitArgs) -> anyhow::Result<ExitCode> {
+    if let Some(dir) = &args.journal {
+        return from_journal::run(args, dir);
+    }
     let set = args.input.read(LabelNeed::Required)?;
     let labels = set.require_labels()?.to_vec();
     set.require_rows(2, "fitting a map")?;

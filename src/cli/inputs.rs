@@ -12,12 +12,7 @@ use std::path::PathBuf;
 pub struct InputArgs {
     /// Logits as .npy, float32 or float64, shape N × K (or N, or N × 1: one binary log-odds
     /// score per row).
-    #[arg(
-        long,
-        value_name = "X.npy",
-        conflicts_with = "data",
-        required_unless_present = "data"
-    )]
+    #[arg(long, value_name = "X.npy", conflicts_with = "data")]
     pub logits: Option<PathBuf>,
     /// Integer labels as .npy, shape N (with --logits).
     #[arg(long, value_name = "Y.npy", requires = "logits")]

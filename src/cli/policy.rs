@@ -84,7 +84,59 @@ pub struct PolicyOutcome {
     pub summary: Vec<String>,
 }
 
+/// The policy flags a refit from the journal understands.
+#[derive(Debug, Clone, Copy)]
+pub struct JournalPolicy {
+    /// A fixed threshold.
+    pub threshold: Option<f64>,
+    /// The accuracy to certify.
+    pub target_accuracy: Option<f64>,
+    /// 1 − δ.
+    pub confidence: f64,
+    /// Share of journaled items held out to certify on.
+    pub holdout: f64,
+}
+
 impl PolicyArgs {
+    /// The flags for `candor fit --journal`, refusing those it cannot honour.
+    ///
+    /// # Errors
+    /// --target-coverage, --per-class or separate certification data, or values out of range.
+    pub fn for_journal(&self) -> anyhow::Result<JournalPolicy> {
+        anyhow::ensure!(
+            self.target_coverage.is_none() && !self.per_class && self.separate().is_none(),
+            "with --journal, the policy is --threshold or --target-accuracy (certified on a holdout of the journal); --target-coverage, --per-class and separate certification data are not supported"
+        );
+        let holdout = self.holdout.unwrap_or(DEFAULT_HOLDOUT);
+        anyhow::ensure!(
+            holdout > 0.0 && holdout < 1.0,
+            "--holdout must lie in (0, 1), got {holdout}"
+        );
+        if let Some(a) = self.target_accuracy {
+            anyhow::ensure!(
+                a > 0.0 && a < 1.0,
+                "--target-accuracy must lie in (0, 1), got {a}"
+            );
+        }
+        if let Some(t) = self.threshold {
+            anyhow::ensure!(
+                (0.0..=1.0).contains(&t),
+                "--threshold must lie in [0, 1], got {t}"
+            );
+        }
+        anyhow::ensure!(
+            self.confidence > 0.0 && self.confidence < 1.0,
+            "--confidence must lie in (0, 1), got {}",
+            self.confidence
+        );
+        Ok(JournalPolicy {
+            threshold: self.threshold,
+            target_accuracy: self.target_accuracy,
+            confidence: self.confidence,
+            holdout,
+        })
+    }
+
     fn certifies(&self) -> bool {
         self.target_accuracy.is_some() || self.target_coverage.is_some()
     }

@@ -2,5 +2,6 @@
 
 pub mod certify;
 pub mod policy;
+pub mod stratified;
 
 pub use policy::{Decision, DecisionPolicy, Evidence};

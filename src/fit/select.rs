@@ -108,6 +108,46 @@ pub fn fit_choice<L: Logit>(
     labels: &[u32],
     seed: u64,
 ) -> Result<Fitted, FitError> {
+    fit_choice_with(choice, logits, columns, labels, None, seed)
+}
+
+/// [`fit_choice`] by a weighted objective: row i counts w_i times (METHODS.md 4.2; labels
+/// gathered with probability π_i are weighted 1/π_i). Temperature scaling and the one-vs-rest
+/// methods take weights.
+///
+/// # Errors
+/// As [`fit_choice`]; [`FitError::BadOption`] for bad weights, or for vector, matrix or
+/// Dirichlet scaling, which do not take weights.
+pub fn fit_choice_weighted<L: Logit>(
+    choice: &MethodChoice,
+    logits: &[L],
+    columns: usize,
+    labels: &[u32],
+    weights: &[f64],
+    seed: u64,
+) -> Result<Fitted, FitError> {
+    temperature::check_weights(weights, labels.len())?;
+    if matches!(
+        choice,
+        MethodChoice::Vector | MethodChoice::Matrix(_) | MethodChoice::Dirichlet(_)
+    ) {
+        return Err(FitError::BadOption {
+            name: "method",
+            value: choice.kind().into(),
+            reason: "vector, matrix and Dirichlet scaling do not take weights; use temperature or a one-vs-rest method".into(),
+        });
+    }
+    fit_choice_with(choice, logits, columns, labels, Some(weights), seed)
+}
+
+fn fit_choice_with<L: Logit>(
+    choice: &MethodChoice,
+    logits: &[L],
+    columns: usize,
+    labels: &[u32],
+    weights: Option<&[f64]>,
+    seed: u64,
+) -> Result<Fitted, FitError> {
     let classes = columns.max(2);
     let one = |(method, d): (Method, FitDiagnostics)| Fitted {
         method,
@@ -126,7 +166,10 @@ pub fn fit_choice<L: Logit>(
     Ok(match choice {
         MethodChoice::Temperature => {
             let rows = Rows::try_new(logits, columns)?;
-            let (t, d) = temperature::fit(&rows, labels)?;
+            let (t, d) = match weights {
+                None => temperature::fit(&rows, labels)?,
+                Some(w) => temperature::fit_weighted(&rows, labels, w, Default::default())?,
+            };
             one((Method::Temperature(t), d))
         }
         MethodChoice::Vector => {
@@ -157,23 +200,23 @@ pub fn fit_choice<L: Logit>(
             }
         }
         MethodChoice::Platt => ovr(
-            fit_one_vs_rest(&PlattFit, logits, columns, labels, None)?,
+            fit_one_vs_rest(&PlattFit, logits, columns, labels, weights)?,
             Method::Platt,
         ),
         MethodChoice::Beta => ovr(
-            fit_one_vs_rest(&BetaFit, logits, columns, labels, None)?,
+            fit_one_vs_rest(&BetaFit, logits, columns, labels, weights)?,
             Method::Beta,
         ),
         MethodChoice::Isotonic => ovr(
-            fit_one_vs_rest(&IsotonicFit, logits, columns, labels, None)?,
+            fit_one_vs_rest(&IsotonicFit, logits, columns, labels, weights)?,
             Method::Isotonic,
         ),
         MethodChoice::Histogram(o) => ovr(
-            fit_one_vs_rest(o, logits, columns, labels, None)?,
+            fit_one_vs_rest(o, logits, columns, labels, weights)?,
             Method::Histogram,
         ),
         MethodChoice::Bbq => ovr(
-            fit_one_vs_rest(&BbqOptions::default(), logits, columns, labels, None)?,
+            fit_one_vs_rest(&BbqOptions::default(), logits, columns, labels, weights)?,
             Method::Bbq,
         ),
     })

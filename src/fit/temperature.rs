@@ -149,13 +149,55 @@ pub fn fit_with<L: Logit>(
     labels: &[u32],
     options: TemperatureOptions,
 ) -> Result<(Temperature, FitDiagnostics), FitError> {
-    fit_on(rows, labels, options, Arch::new())
+    fit_on(rows, labels, None, options, Arch::new())
+}
+
+/// Fits T by the weighted NLL Σ w_i·ℓ_i(T) / Σ w_i (METHODS.md 4.2: labels gathered with known
+/// probabilities π_i are weighted 1/π_i).
+///
+/// # Errors
+/// As [`fit_with`], and [`FitError::BadOption`] for a weight list of the wrong length, or a
+/// weight that is negative or not finite, or weights that sum to 0.
+pub fn fit_weighted<L: Logit>(
+    rows: &Rows<'_, L>,
+    labels: &[u32],
+    weights: &[f64],
+    options: TemperatureOptions,
+) -> Result<(Temperature, FitDiagnostics), FitError> {
+    check_weights(weights, labels.len())?;
+    fit_on(rows, labels, Some(weights), options, Arch::new())
+}
+
+/// Checks per-row weights: one per row, each finite and ≥ 0, not all 0.
+pub(crate) fn check_weights(weights: &[f64], rows: usize) -> Result<(), FitError> {
+    let bad = |value: String, reason: &str| FitError::BadOption {
+        name: "weights",
+        value,
+        reason: reason.into(),
+    };
+    if weights.len() != rows {
+        return Err(bad(
+            format!("{} weights", weights.len()),
+            &format!("must have one weight per row ({rows})"),
+        ));
+    }
+    if let Some(i) = weights.iter().position(|w| !(w.is_finite() && *w >= 0.0)) {
+        return Err(bad(
+            format!("row {i}: {}", weights[i]),
+            "every weight must be finite and >= 0",
+        ));
+    }
+    if weights.iter().sum::<f64>() <= 0.0 {
+        return Err(bad("all 0".into(), "some weight must be positive"));
+    }
+    Ok(())
 }
 
 /// [`fit_with`] with the row loops compiled for `arch` (tests compare instruction sets).
 fn fit_on<L: Logit>(
     rows: &Rows<'_, L>,
     labels: &[u32],
+    weights: Option<&[f64]>,
     options: TemperatureOptions,
     arch: Arch,
 ) -> Result<(Temperature, FitDiagnostics), FitError> {
@@ -173,9 +215,12 @@ fn fit_on<L: Logit>(
             reason: "must be at least 1".into(),
         });
     }
+    let total_weight = weights.map_or(labels.len() as f64, |w| w.iter().sum());
     let passes = Passes {
         rows,
         labels,
+        weights,
+        total_weight,
         threads: options.threads,
         arch,
     };
@@ -194,7 +239,7 @@ fn fit_on<L: Logit>(
         Ok((t, diag))
     };
 
-    let g0 = survey.grad_at_zero / labels.len() as f64;
+    let g0 = survey.grad_at_zero / total_weight;
     if !survey.varying {
         diag.converged = true;
         diag.flags
@@ -365,13 +410,48 @@ mod tests {
             assert_eq!(one.1, many.1);
         }
         // Nor does the instruction set: the x86-64 baseline against the best one detected.
-        let baseline = fit_on(&rows, &y, TemperatureOptions { threads: 2 }, Arch::Scalar).unwrap();
+        let baseline = fit_on(
+            &rows,
+            &y,
+            None,
+            TemperatureOptions { threads: 2 },
+            Arch::Scalar,
+        )
+        .unwrap();
         assert_eq!(one.0.inverse().to_bits(), baseline.0.inverse().to_bits());
         assert_eq!(one.1, baseline.1);
         // The Newton path ran: converged inside the bounds, nothing flagged.
         assert!(one.1.converged && one.1.flags.is_empty(), "{one:?}");
         assert!(one.1.iterations >= 2, "{one:?}");
         assert!(fit_with(&rows, &y, TemperatureOptions { threads: 0 }).is_err());
+    }
+
+    #[test]
+    fn integer_weights_fit_like_repeated_rows() {
+        // Weighted NLL with weight w_i equals the plain NLL of the set with row i repeated w_i
+        // times (closed form), so both fits land on the same T.
+        let w = [3.0, 1.0, 0.0, 2.0, 1.0, 4.0];
+        let (mut z, mut y) = (Vec::new(), Vec::new());
+        for (i, &wi) in w.iter().enumerate() {
+            for _ in 0..wi as usize {
+                z.extend_from_slice(&E5_Z[3 * i..3 * i + 3]);
+                y.push(E5_Y[i]);
+            }
+        }
+        let opts = TemperatureOptions { threads: 1 };
+        let repeated = fit_with(&Rows::try_new(&z, 3).unwrap(), &y, opts).unwrap();
+        let rows = Rows::try_new(&E5_Z, 3).unwrap();
+        let weighted = fit_weighted(&rows, &E5_Y, &w, opts).unwrap();
+        assert!((repeated.0.inverse() - weighted.0.inverse()).abs() < 1e-10);
+        let (a, b) = (repeated.1, weighted.1);
+        assert!((a.objective_end.unwrap() - b.objective_end.unwrap()).abs() < 1e-12);
+        // Unit weights are the unweighted fit, bit for bit.
+        let unit = fit_weighted(&rows, &E5_Y, &[1.0; 6], opts).unwrap();
+        let plain = fit_with(&rows, &E5_Y, opts).unwrap();
+        assert_eq!(unit.0.inverse().to_bits(), plain.0.inverse().to_bits());
+        assert!(fit_weighted(&rows, &E5_Y, &[1.0; 5], opts).is_err());
+        assert!(fit_weighted(&rows, &E5_Y, &[1.0, -1.0, 1.0, 1.0, 1.0, 1.0], opts).is_err());
+        assert!(fit_weighted(&rows, &E5_Y, &[0.0; 6], opts).is_err());
     }
 
     #[test]

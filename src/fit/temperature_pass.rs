@@ -67,6 +67,10 @@ impl Survey {
 pub(crate) struct Passes<'r, 'a, L> {
     pub rows: &'r Rows<'a, L>,
     pub labels: &'r [u32],
+    /// Per-row weights (the weighted NLL Σ w_i·ℓ_i / Σ w_i); `None`: every row 1.
+    pub weights: Option<&'r [f64]>,
+    /// Σ w_i (the row count without weights).
+    pub total_weight: f64,
     pub threads: usize,
     /// The instruction set the row loops are compiled for (see [`ChunkJob`]).
     pub arch: Arch,
@@ -111,7 +115,7 @@ impl<'p, 'r, 'a, L: Logit> Objective<'p, 'r, 'a, L> {
 
     /// Stores sums found by a pass (for example [`Passes::first`]) as the point at `beta`.
     pub(crate) fn remember(&mut self, beta: f64, t: Terms) -> Point {
-        let n = self.passes.labels.len() as f64;
+        let n = self.passes.total_weight;
         let p = Point {
             beta,
             loss: t.loss / n,
@@ -204,9 +208,25 @@ impl<L: Logit> Passes<'_, '_, L> {
                 };
                 (row_terms(row, y, beta, &mut buf), r)
             };
-            terms.add(&t);
-            if let Some(r) = r {
-                s.add(&r);
+            match self.weights {
+                None => {
+                    terms.add(&t);
+                    if let Some(r) = r {
+                        s.add(&r);
+                    }
+                }
+                Some(w) => {
+                    let w = w[i];
+                    terms.add(&Terms {
+                        loss: w * t.loss,
+                        grad: w * t.grad,
+                        curv: w * t.curv,
+                    });
+                    if let Some(mut r) = r {
+                        r.grad_at_zero *= w;
+                        s.add(&r);
+                    }
+                }
             }
         }
         (terms, s)
