@@ -1,6 +1,7 @@
 //! Integration tests: one binary, one module per topic.
 
 mod cli;
+mod config;
 mod conformance;
 mod fuzz_corpus;
 mod journal;

@@ -12,6 +12,7 @@ mod maps;
 mod policy;
 mod report;
 mod serve;
+mod serve_config;
 
 use clap::{Parser, Subcommand};
 

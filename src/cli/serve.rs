@@ -16,10 +16,21 @@ use tokio::sync::watch;
 /// Arguments of `candor serve`. Every flag has a CANDOR_* environment fallback.
 #[derive(Debug, clap::Args)]
 pub struct ServeArgs {
+    /// TOML file of settings. Its keys are the long flag names in kebab-case, e.g.
+    /// `rescan-secs = 5`, `listen = "0.0.0.0:50551"`, `no-file-events = true`; an unknown key is
+    /// an error. Precedence: flag > environment variable > this file > default.
+    #[arg(long, env = "CANDOR_CONFIG", value_name = "FILE")]
+    pub(super) config: Option<PathBuf>,
+    /// Print the effective configuration as TOML (which --config accepts back), each value with
+    /// where it came from, the admin token redacted; then exit. (No environment fallback: a
+    /// deployment's environment must not turn the server into a printer.)
+    #[arg(long)]
+    print_config: bool,
     /// The map store: DIR/<model>/<version>.json plus an optional DIR/<model>/active-version
-    /// pointer file, and/or flat DIR/*.json files. Watched for changes.
+    /// pointer file, and/or flat DIR/*.json files. Watched for changes. Required (here, in the
+    /// environment or in the config file).
     #[arg(long, env = "CANDOR_MAPS", value_name = "DIR")]
-    maps: PathBuf,
+    maps: Option<PathBuf>,
     /// Seconds between full rescans of the map store (the fallback when file events are lost).
     #[arg(
         long,
@@ -182,10 +193,20 @@ fn init_logging(format: LogFormat, filter: &str) -> anyhow::Result<()> {
 }
 
 pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
-    init_logging(args.log_format, &args.log)?;
-    if !args.maps.is_dir() {
-        anyhow::bail!("--maps {}: not a directory", args.maps.display());
+    let resolved = super::serve_config::resolve(args)?;
+    if resolved.args.print_config {
+        super::say!("{}", super::serve_config::print(&resolved).trim_end());
+        return Ok(ExitCode::SUCCESS);
     }
+    let args = resolved.args;
+    init_logging(args.log_format, &args.log)?;
+    let Some(maps) = &args.maps else {
+        anyhow::bail!("--maps is required (the flag, CANDOR_MAPS or `maps` in the config file)");
+    };
+    if !maps.is_dir() {
+        anyhow::bail!("--maps {}: not a directory", maps.display());
+    }
+    let maps = maps.clone();
     let token = admin_token(&args)?;
     if let (Listen::On(addr), None) = (args.admin_listen, &token) {
         anyhow::ensure!(
@@ -198,7 +219,7 @@ pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
         .enable_all()
         .build()
         .context("starting the async runtime")?;
-    runtime.block_on(serve_until_signal(args, token))?;
+    runtime.block_on(serve_until_signal(args, maps, token))?;
     Ok(ExitCode::SUCCESS)
 }
 
@@ -216,7 +237,11 @@ async fn stopped(mut stop: watch::Receiver<bool>) {
     let _ = stop.wait_for(|s| *s).await;
 }
 
-async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyhow::Result<()> {
+async fn serve_until_signal(
+    args: ServeArgs,
+    maps: PathBuf,
+    token: Option<AdminToken>,
+) -> anyhow::Result<()> {
     // Take over SIGHUP before anything is announced: its default action ends the process, and
     // the store watcher, which handles it, starts only after the first scan.
     #[cfg(unix)]
@@ -242,7 +267,7 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
     });
 
     let registry = Registry::with_options(
-        Some(&args.maps),
+        Some(&maps),
         RegistryOptions {
             audit_rate: args.audit_rate,
         },
@@ -308,7 +333,7 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
 
     if !registry.is_ready() {
         if view.models.is_empty() {
-            tracing::warn!(dir = %args.maps.display(), "no valid map found; health stays NOT_SERVING");
+            tracing::warn!(dir = %maps.display(), "no valid map found; health stays NOT_SERVING");
         } else {
             tracing::warn!("some maps were rejected; health stays NOT_SERVING until every model has a valid active map");
         }
