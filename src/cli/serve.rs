@@ -2,9 +2,10 @@
 
 use crate::journal::{DecisionLog, JournalOptions};
 use crate::registry::{spawn_store_watcher, Registry, RegistryOptions, WatchOptions};
-use crate::server::{run as serve, run_admin, ServeOptions};
-use crate::service::AdminToken;
+use crate::server::{run as serve, run_admin_with_tls, ServeOptions};
+use crate::service::{self, AdminToken};
 use crate::telemetry::{run_telemetry, RpcStats, Telemetry};
+use crate::tls::{TlsFiles, TlsReloader};
 use anyhow::Context;
 use std::net::SocketAddr;
 use std::path::PathBuf;
@@ -54,7 +55,8 @@ pub struct ServeArgs {
     )]
     admin_listen: Listen,
     /// Address of the telemetry listener (HTTP: /metrics in the Prometheus text format, /ready,
-    /// /live), or "off".
+    /// /live), or "off". Always plain HTTP, also when --tls-cert is set: keep it on a private
+    /// network or behind the scraper's own proxy.
     #[arg(
         long,
         env = "CANDOR_TELEMETRY_LISTEN",
@@ -129,6 +131,57 @@ pub struct ServeArgs {
         value_name = "SECS"
     )]
     grace_period_secs: u64,
+    /// Largest encoded request message the data listener accepts, in bytes; larger ones are
+    /// refused with OUT_OF_RANGE before decoding. (The admin listener keeps its own
+    /// limit, sized for map pushes of up to 64 MiB.)
+    #[arg(long, env = "CANDOR_MAX_MESSAGE_BYTES", value_name = "BYTES",
+          default_value_t = service::DEFAULT_MAX_MESSAGE_BYTES, value_parser = at_least_one)]
+    max_message_bytes: usize,
+    /// Most classes a map may have: maps with more are refused at load (the reason is logged
+    /// and shown by `candor maps list`), and requests with more logits are refused with
+    /// INVALID_ARGUMENT before any work.
+    #[arg(long, env = "CANDOR_MAX_CLASSES", value_name = "K",
+          default_value_t = service::DEFAULT_MAX_CLASSES, value_parser = at_least_one)]
+    max_classes: usize,
+    /// Most rows in one CalibrateBatch request; larger batches are refused with
+    /// INVALID_ARGUMENT. (CalibrateStream carries one row per message.)
+    #[arg(long, env = "CANDOR_MAX_BATCH", value_name = "ROWS",
+          default_value_t = service::MAX_BATCH_ROWS, value_parser = at_least_one)]
+    max_batch: usize,
+    /// Most data-plane requests answered at once (an open stream counts as one until it ends);
+    /// beyond it a request is refused at once with RESOURCE_EXHAUSTED, never queued. 0: no
+    /// bound. Health checks and reflection are not counted.
+    #[arg(long, env = "CANDOR_MAX_CONCURRENT_REQUESTS", value_name = "N",
+          default_value_t = service::DEFAULT_MAX_CONCURRENT_REQUESTS)]
+    max_concurrent_requests: usize,
+    /// Certificate chain (PEM, leaf first) for TLS on the gRPC listener and the admin listener.
+    /// Needs --tls-key. Re-read with the key and the client CA on SIGHUP: new connections use
+    /// the new files; if they are bad, the previous configuration stays and the reason is logged.
+    #[arg(
+        long,
+        env = "CANDOR_TLS_CERT",
+        value_name = "PEM",
+        requires = "tls_key"
+    )]
+    tls_cert: Option<PathBuf>,
+    /// Private key (PEM: PKCS#8, PKCS#1 or SEC1) of --tls-cert.
+    #[arg(
+        long,
+        env = "CANDOR_TLS_KEY",
+        value_name = "PEM",
+        requires = "tls_cert"
+    )]
+    tls_key: Option<PathBuf>,
+    /// Certificate authorities (PEM) for mutual TLS: every client of the gRPC and admin
+    /// listeners must present a certificate signed by one of them, or the handshake is refused.
+    /// Needs --tls-cert.
+    #[arg(
+        long,
+        env = "CANDOR_TLS_CLIENT_CA",
+        value_name = "PEM",
+        requires = "tls_cert"
+    )]
+    tls_client_ca: Option<PathBuf>,
     /// Log format.
     #[arg(long, env = "CANDOR_LOG_FORMAT", value_enum, default_value = "text")]
     log_format: LogFormat,
@@ -140,6 +193,14 @@ pub struct ServeArgs {
         value_name = "FILTER"
     )]
     log: String,
+}
+
+fn at_least_one(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(0) => Err("must be at least 1".to_owned()),
+        Ok(n) => Ok(n),
+        Err(e) => Err(format!("{s:?} is not a whole number: {e}")),
+    }
 }
 
 fn parse_share(s: &str) -> Result<f64, String> {
@@ -245,8 +306,28 @@ async fn serve_until_signal(
     // Take over SIGHUP before anything is announced: its default action ends the process, and
     // the store watcher, which handles it, starts only after the first scan.
     #[cfg(unix)]
-    let _hangup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
+    let hangup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
         .context("listening for SIGHUP")?;
+    let tls = match (&args.tls_cert, &args.tls_key) {
+        (Some(cert), Some(key)) => Some(
+            TlsReloader::new(TlsFiles {
+                cert: cert.clone(),
+                key: key.clone(),
+                client_ca: args.tls_client_ca.clone(),
+            })
+            .context("setting up TLS")?,
+        ),
+        _ => None,
+    };
+    // Kept (unused) without TLS so the handler stays installed for the whole run.
+    #[cfg(unix)]
+    let _hangup = match &tls {
+        Some(t) => {
+            tokio::spawn(reload_tls_on_hangup(hangup, t.clone()));
+            None
+        }
+        None => Some(hangup),
+    };
     let listener = tokio::net::TcpListener::bind(args.listen)
         .await
         .with_context(|| format!("binding {}", args.listen))?;
@@ -270,6 +351,7 @@ async fn serve_until_signal(
         Some(&maps),
         RegistryOptions {
             audit_rate: args.audit_rate,
+            max_classes: args.max_classes,
         },
     );
     // The first scan runs before anything is served or logged as listening, so the first
@@ -295,6 +377,13 @@ async fn serve_until_signal(
         grace_period: Duration::from_secs(args.grace_period_secs),
         stats: stats.clone(),
         journal: Some(journal),
+        tls: tls.clone(),
+        limits: service::Limits {
+            max_message_bytes: args.max_message_bytes,
+            max_classes: args.max_classes,
+            max_batch: args.max_batch,
+            max_concurrent_requests: args.max_concurrent_requests,
+        },
     };
     let telemetry = match args.telemetry_listen {
         Listen::Off => None,
@@ -316,15 +405,16 @@ async fn serve_until_signal(
         options,
         stopped(stop_rx.clone()),
     ));
-    tracing::info!(%addr, "listening");
+    tracing::info!(%addr, tls = tls.is_some(), mutual_tls = args.tls_client_ca.is_some(), "listening");
     let admin = match admin_listener {
         Some(l) => {
             let admin_addr = l.local_addr()?;
             tracing::info!(addr = %admin_addr, authenticated = token.is_some(), "admin listening");
-            Some(tokio::spawn(run_admin(
+            Some(tokio::spawn(run_admin_with_tls(
                 l,
                 registry.clone(),
                 token,
+                tls.clone(),
                 stopped(stop_rx.clone()),
             )))
         }
@@ -360,6 +450,23 @@ async fn serve_until_signal(
     let (accepted, deferred) = counts.iter().fold((0, 0), |(a, d), c| (a + c.2, d + c.3));
     tracing::info!(accepted, deferred, "stopped");
     Ok(())
+}
+
+/// Re-reads the TLS files on every SIGHUP (beside the map-store rescan the watcher does then).
+#[cfg(unix)]
+async fn reload_tls_on_hangup(mut hangup: tokio::signal::unix::Signal, tls: TlsReloader) {
+    while hangup.recv().await.is_some() {
+        match tls.reload() {
+            Ok(()) => tracing::info!(
+                cert = %tls.files().cert.display(),
+                "TLS configuration reloaded; new connections use it"
+            ),
+            Err(e) => tracing::error!(
+                reason = %e,
+                "TLS reload failed; the previous TLS configuration stays in use"
+            ),
+        }
+    }
 }
 
 /// Completes on SIGTERM or SIGINT.
