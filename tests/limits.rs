@@ -257,5 +257,6 @@ async fn a_passed_deadline_gets_deadline_exceeded_and_streams_end_at_the_deadlin
     let e = stream.message().await.unwrap_err();
     assert_eq!(e.code(), Code::DeadlineExceeded, "{e:?}");
     assert!(started.elapsed() >= STREAM_DEADLINE);
+    assert_eq!(s.stats.errors(Code::DeadlineExceeded), 2);
     drop(tx);
 }

@@ -127,6 +127,8 @@ struct Draining<S> {
     drained: Pin<Box<dyn Future<Output = ()> + Send>>,
     /// The client's deadline: the stream ends with DEADLINE_EXCEEDED when it passes.
     deadline: Option<(Pin<Box<tokio::time::Sleep>>, Duration)>,
+    /// Where an ended deadline is counted.
+    stats: Arc<RpcStats>,
     /// The in-flight slot, released when the stream ends or the client goes away (the
     /// transport drops the response stream then).
     _slot: Option<OwnedSemaphorePermit>,
@@ -153,6 +155,7 @@ where
             if sleep.as_mut().poll(cx).is_ready() {
                 let timeout = *timeout;
                 self.done = true;
+                self.stats.error(tonic::Code::DeadlineExceeded);
                 return Poll::Ready(Some(Err(status::deadline_passed(timeout))));
             }
         }
@@ -292,6 +295,7 @@ impl Calibrator for CalibratorService {
             rows,
             drained,
             deadline: timeout.map(|t| (Box::pin(tokio::time::sleep(t)), t)),
+            stats: self.stats.clone(),
             _slot: slot,
             done: false,
         })))
