@@ -45,3 +45,4 @@ pub mod server;
 pub mod service;
 pub mod stats;
 pub mod telemetry;
+pub mod tls;

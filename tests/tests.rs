@@ -1,10 +1,12 @@
 //! Integration tests: one binary, one module per topic.
 
 mod cli;
+mod config;
 mod conformance;
 mod deploy;
 mod fuzz_corpus;
 mod journal;
+mod limits;
 mod live;
 mod loadgen;
 mod offline;
@@ -14,3 +16,4 @@ mod rollout_load;
 mod serve;
 mod support;
 mod telemetry;
+mod tls;

@@ -12,6 +12,7 @@ mod maps;
 mod policy;
 mod report;
 mod serve;
+mod serve_config;
 mod status;
 
 use clap::{Parser, Subcommand};
@@ -47,7 +48,7 @@ pub struct Cli {
 #[derive(Debug, Subcommand)]
 enum Command {
     /// Run the gRPC sidecar: raw logits in, calibrated probabilities and accept/defer out.
-    Serve(serve::ServeArgs),
+    Serve(Box<serve::ServeArgs>),
     /// Validate map files with the same validator the sidecar uses; exit 1 if any has problems.
     Check(check::CheckArgs),
     /// Fit a recalibration map from held-out logits and labels and choose its threshold.
@@ -74,7 +75,7 @@ enum Command {
 pub fn main() -> ExitCode {
     let cli = Cli::parse();
     let result = match cli.command {
-        Command::Serve(args) => serve::run(args),
+        Command::Serve(args) => serve::run(*args),
         Command::Check(args) => check::run(&args),
         Command::Demo(args) => demo::run(&args),
         Command::Fit(args) => fit::run(&args),

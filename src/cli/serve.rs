@@ -3,9 +3,10 @@
 use crate::journal::{DecisionLog, JournalOptions, SpecLookup};
 use crate::live::{WindowSizes, WindowSpec};
 use crate::registry::{spawn_store_watcher, Registry, RegistryOptions, WatchOptions};
-use crate::server::{run as serve, run_admin, ServeOptions};
-use crate::service::AdminToken;
+use crate::server::{run as serve, run_admin_with_tls, ServeOptions};
+use crate::service::{self, AdminToken};
 use crate::telemetry::{run_telemetry, RpcStats, Telemetry};
+use crate::tls::{TlsFiles, TlsReloader};
 use anyhow::Context;
 use std::net::SocketAddr;
 use std::path::PathBuf;
@@ -17,10 +18,21 @@ use tokio::sync::watch;
 /// Arguments of `candor serve`. Every flag has a CANDOR_* environment fallback.
 #[derive(Debug, clap::Args)]
 pub struct ServeArgs {
+    /// TOML file of settings. Its keys are the long flag names in kebab-case, e.g.
+    /// `rescan-secs = 5`, `listen = "0.0.0.0:50551"`, `no-file-events = true`; an unknown key is
+    /// an error. Precedence: flag > environment variable > this file > default.
+    #[arg(long, env = "CANDOR_CONFIG", value_name = "FILE")]
+    pub(super) config: Option<PathBuf>,
+    /// Print the effective configuration as TOML (which --config accepts back), each value with
+    /// where it came from, the admin token redacted; then exit. (No environment fallback: a
+    /// deployment's environment must not turn the server into a printer.)
+    #[arg(long)]
+    print_config: bool,
     /// The map store: DIR/<model>/<version>.json plus an optional DIR/<model>/active-version
-    /// pointer file, and/or flat DIR/*.json files. Watched for changes.
+    /// pointer file, and/or flat DIR/*.json files. Watched for changes. Required (here, in the
+    /// environment or in the config file).
     #[arg(long, env = "CANDOR_MAPS", value_name = "DIR")]
-    maps: PathBuf,
+    maps: Option<PathBuf>,
     /// Seconds between full rescans of the map store (the fallback when file events are lost).
     #[arg(
         long,
@@ -44,7 +56,8 @@ pub struct ServeArgs {
     )]
     admin_listen: Listen,
     /// Address of the telemetry listener (HTTP: /metrics in the Prometheus text format, /ready,
-    /// /live), or "off".
+    /// /live), or "off". Always plain HTTP, also when --tls-cert is set: keep it on a private
+    /// network or behind the scraper's own proxy.
     #[arg(
         long,
         env = "CANDOR_TELEMETRY_LISTEN",
@@ -128,6 +141,57 @@ pub struct ServeArgs {
         value_name = "SECS"
     )]
     grace_period_secs: u64,
+    /// Largest encoded request message the data listener accepts, in bytes; larger ones are
+    /// refused with OUT_OF_RANGE before decoding. (The admin listener keeps its own
+    /// limit, sized for map pushes of up to 64 MiB.)
+    #[arg(long, env = "CANDOR_MAX_MESSAGE_BYTES", value_name = "BYTES",
+          default_value_t = service::DEFAULT_MAX_MESSAGE_BYTES, value_parser = at_least_one)]
+    max_message_bytes: usize,
+    /// Most classes a map may have: maps with more are refused at load (the reason is logged
+    /// and shown by `candor maps list`), and requests with more logits are refused with
+    /// INVALID_ARGUMENT before any work.
+    #[arg(long, env = "CANDOR_MAX_CLASSES", value_name = "K",
+          default_value_t = service::DEFAULT_MAX_CLASSES, value_parser = at_least_one)]
+    max_classes: usize,
+    /// Most rows in one CalibrateBatch request; larger batches are refused with
+    /// INVALID_ARGUMENT. (CalibrateStream carries one row per message.)
+    #[arg(long, env = "CANDOR_MAX_BATCH", value_name = "ROWS",
+          default_value_t = service::MAX_BATCH_ROWS, value_parser = at_least_one)]
+    max_batch: usize,
+    /// Most data-plane requests answered at once (an open stream counts as one until it ends);
+    /// beyond it a request is refused at once with RESOURCE_EXHAUSTED, never queued. 0: no
+    /// bound. Health checks and reflection are not counted.
+    #[arg(long, env = "CANDOR_MAX_CONCURRENT_REQUESTS", value_name = "N",
+          default_value_t = service::DEFAULT_MAX_CONCURRENT_REQUESTS)]
+    max_concurrent_requests: usize,
+    /// Certificate chain (PEM, leaf first) for TLS on the gRPC listener and the admin listener.
+    /// Needs --tls-key. Re-read with the key and the client CA on SIGHUP: new connections use
+    /// the new files; if they are bad, the previous configuration stays and the reason is logged.
+    #[arg(
+        long,
+        env = "CANDOR_TLS_CERT",
+        value_name = "PEM",
+        requires = "tls_key"
+    )]
+    tls_cert: Option<PathBuf>,
+    /// Private key (PEM: PKCS#8, PKCS#1 or SEC1) of --tls-cert.
+    #[arg(
+        long,
+        env = "CANDOR_TLS_KEY",
+        value_name = "PEM",
+        requires = "tls_cert"
+    )]
+    tls_key: Option<PathBuf>,
+    /// Certificate authorities (PEM) for mutual TLS: every client of the gRPC and admin
+    /// listeners must present a certificate signed by one of them, or the handshake is refused.
+    /// Needs --tls-cert.
+    #[arg(
+        long,
+        env = "CANDOR_TLS_CLIENT_CA",
+        value_name = "PEM",
+        requires = "tls_cert"
+    )]
+    tls_client_ca: Option<PathBuf>,
     /// Log format.
     #[arg(long, env = "CANDOR_LOG_FORMAT", value_enum, default_value = "text")]
     log_format: LogFormat,
@@ -139,6 +203,14 @@ pub struct ServeArgs {
         value_name = "FILTER"
     )]
     log: String,
+}
+
+fn at_least_one(s: &str) -> Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(0) => Err("must be at least 1".to_owned()),
+        Ok(n) => Ok(n),
+        Err(e) => Err(format!("{s:?} is not a whole number: {e}")),
+    }
 }
 
 fn parse_share(s: &str) -> Result<f64, String> {
@@ -192,10 +264,20 @@ fn init_logging(format: LogFormat, filter: &str) -> anyhow::Result<()> {
 }
 
 pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
-    init_logging(args.log_format, &args.log)?;
-    if !args.maps.is_dir() {
-        anyhow::bail!("--maps {}: not a directory", args.maps.display());
+    let resolved = super::serve_config::resolve(args)?;
+    if resolved.args.print_config {
+        super::say!("{}", super::serve_config::print(&resolved).trim_end());
+        return Ok(ExitCode::SUCCESS);
     }
+    let args = resolved.args;
+    init_logging(args.log_format, &args.log)?;
+    let Some(maps) = &args.maps else {
+        anyhow::bail!("--maps is required (the flag, CANDOR_MAPS or `maps` in the config file)");
+    };
+    if !maps.is_dir() {
+        anyhow::bail!("--maps {}: not a directory", maps.display());
+    }
+    let maps = maps.clone();
     let token = admin_token(&args)?;
     if let (Listen::On(addr), None) = (args.admin_listen, &token) {
         anyhow::ensure!(
@@ -208,7 +290,7 @@ pub(super) fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
         .enable_all()
         .build()
         .context("starting the async runtime")?;
-    runtime.block_on(serve_until_signal(args, token))?;
+    runtime.block_on(serve_until_signal(args, maps, token))?;
     Ok(ExitCode::SUCCESS)
 }
 
@@ -226,12 +308,36 @@ async fn stopped(mut stop: watch::Receiver<bool>) {
     let _ = stop.wait_for(|s| *s).await;
 }
 
-async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyhow::Result<()> {
+async fn serve_until_signal(
+    args: ServeArgs,
+    maps: PathBuf,
+    token: Option<AdminToken>,
+) -> anyhow::Result<()> {
     // Take over SIGHUP before anything is announced: its default action ends the process, and
     // the store watcher, which handles it, starts only after the first scan.
     #[cfg(unix)]
-    let _hangup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
+    let hangup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
         .context("listening for SIGHUP")?;
+    let tls = match (&args.tls_cert, &args.tls_key) {
+        (Some(cert), Some(key)) => Some(
+            TlsReloader::new(TlsFiles {
+                cert: cert.clone(),
+                key: key.clone(),
+                client_ca: args.tls_client_ca.clone(),
+            })
+            .context("setting up TLS")?,
+        ),
+        _ => None,
+    };
+    // Kept (unused) without TLS so the handler stays installed for the whole run.
+    #[cfg(unix)]
+    let _hangup = match &tls {
+        Some(t) => {
+            tokio::spawn(reload_tls_on_hangup(hangup, t.clone()));
+            None
+        }
+        None => Some(hangup),
+    };
     let listener = tokio::net::TcpListener::bind(args.listen)
         .await
         .with_context(|| format!("binding {}", args.listen))?;
@@ -252,9 +358,10 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
     });
 
     let registry = Registry::with_options(
-        Some(&args.maps),
+        Some(&maps),
         RegistryOptions {
             audit_rate: args.audit_rate,
+            max_classes: args.max_classes,
         },
     );
     // The first scan runs before anything is served or logged as listening, so the first
@@ -296,6 +403,13 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
         grace_period: Duration::from_secs(args.grace_period_secs),
         stats: stats.clone(),
         journal: Some(journal),
+        tls: tls.clone(),
+        limits: service::Limits {
+            max_message_bytes: args.max_message_bytes,
+            max_classes: args.max_classes,
+            max_batch: args.max_batch,
+            max_concurrent_requests: args.max_concurrent_requests,
+        },
     };
     let telemetry = match args.telemetry_listen {
         Listen::Off => None,
@@ -317,15 +431,16 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
         options,
         stopped(stop_rx.clone()),
     ));
-    tracing::info!(%addr, "listening");
+    tracing::info!(%addr, tls = tls.is_some(), mutual_tls = args.tls_client_ca.is_some(), "listening");
     let admin = match admin_listener {
         Some(l) => {
             let admin_addr = l.local_addr()?;
             tracing::info!(addr = %admin_addr, authenticated = token.is_some(), "admin listening");
-            Some(tokio::spawn(run_admin(
+            Some(tokio::spawn(run_admin_with_tls(
                 l,
                 registry.clone(),
                 token,
+                tls.clone(),
                 stopped(stop_rx.clone()),
             )))
         }
@@ -334,7 +449,7 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
 
     if !registry.is_ready() {
         if view.models.is_empty() {
-            tracing::warn!(dir = %args.maps.display(), "no valid map found; health stays NOT_SERVING");
+            tracing::warn!(dir = %maps.display(), "no valid map found; health stays NOT_SERVING");
         } else {
             tracing::warn!("some maps were rejected; health stays NOT_SERVING until every model has a valid active map");
         }
@@ -361,6 +476,23 @@ async fn serve_until_signal(args: ServeArgs, token: Option<AdminToken>) -> anyho
     let (accepted, deferred) = counts.iter().fold((0, 0), |(a, d), c| (a + c.2, d + c.3));
     tracing::info!(accepted, deferred, "stopped");
     Ok(())
+}
+
+/// Re-reads the TLS files on every SIGHUP (beside the map-store rescan the watcher does then).
+#[cfg(unix)]
+async fn reload_tls_on_hangup(mut hangup: tokio::signal::unix::Signal, tls: TlsReloader) {
+    while hangup.recv().await.is_some() {
+        match tls.reload() {
+            Ok(()) => tracing::info!(
+                cert = %tls.files().cert.display(),
+                "TLS configuration reloaded; new connections use it"
+            ),
+            Err(e) => tracing::error!(
+                reason = %e,
+                "TLS reload failed; the previous TLS configuration stays in use"
+            ),
+        }
+    }
 }
 
 /// Completes on SIGTERM or SIGINT.

@@ -67,11 +67,22 @@ impl DecisionCounters {
 }
 
 /// Settings of a registry that apply to every map it loads.
-#[derive(Debug, Clone, Copy, Default)]
+#[derive(Debug, Clone, Copy)]
 pub struct RegistryOptions {
     /// Share of accepted items, chosen from a hash of the request id, marked for audit; in
     /// [0, 1]. `None`: each map's own `policy.audit_rate` (0 when it sets none).
     pub audit_rate: Option<f64>,
+    /// Maps with more classes are refused at load (from the store or pushed), with the reason.
+    pub max_classes: usize,
+}
+
+impl Default for RegistryOptions {
+    fn default() -> Self {
+        RegistryOptions {
+            audit_rate: None,
+            max_classes: crate::service::DEFAULT_MAX_CLASSES,
+        }
+    }
 }
 
 /// An immutable routing table: one [`ModelRoute`] per model.
@@ -193,6 +204,7 @@ impl Registry {
     pub fn with_options(dir: Option<&Path>, options: RegistryOptions) -> Arc<Self> {
         let mut rollout = Rollout::new(dir.map(Path::to_owned));
         rollout.set_audit_rate(options.audit_rate);
+        rollout.set_max_classes(options.max_classes);
         Arc::new(Registry {
             rollout: Mutex::new(rollout),
             ..Self::default()

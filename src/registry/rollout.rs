@@ -280,7 +280,14 @@ pub(super) struct Rollout {
     unserved: usize,
     /// Audit cut given to every map loaded.
     audit_override: Option<f64>,
+    /// Maps with more classes are refused.
+    max_classes: usize,
     last_dir_error: Option<String>,
+}
+
+/// Why a map with too many classes is refused.
+fn too_many_classes(classes: usize, max: usize) -> String {
+    format!("the map has {classes} classes; this sidecar loads at most {max} (--max-classes)")
 }
 
 /// Compares two maps for "newest": later `provenance.created_at` first, then version name in
@@ -341,6 +348,7 @@ impl Rollout {
             publishes_total: 0,
             unserved: 0,
             audit_override: None,
+            max_classes: crate::service::DEFAULT_MAX_CLASSES,
             last_dir_error: None,
         }
     }
@@ -348,6 +356,10 @@ impl Rollout {
     /// The audit rate for every map, overriding the maps' own `policy.audit_rate`.
     pub(super) fn set_audit_rate(&mut self, rate: Option<f64>) {
         self.audit_override = rate;
+    }
+
+    pub(super) fn set_max_classes(&mut self, max: usize) {
+        self.max_classes = max;
     }
 
     pub(super) fn store_dir(&self) -> Option<&Path> {
@@ -424,7 +436,15 @@ impl Rollout {
             BTreeMap::new();
         let mut refused: BTreeMap<Option<String>, Vec<(String, PathBuf, String)>> = BTreeMap::new();
         for f in scan.files {
-            match f.result {
+            let max = self.max_classes;
+            let result = f.result.and_then(|m| {
+                if m.classes() > max {
+                    Err(too_many_classes(m.classes(), max))
+                } else {
+                    Ok(m)
+                }
+            });
+            match result {
                 Ok(m) => found
                     .entry(m.model().to_owned())
                     .or_default()
@@ -666,6 +686,12 @@ impl Rollout {
         let dir = self.store.clone().ok_or(RolloutError::NoStore)?;
         let map = CalibrationMap::from_slice(bytes)
             .map_err(|e| RolloutError::InvalidMap(e.problems_text()))?;
+        if map.classes() > self.max_classes {
+            return Err(RolloutError::InvalidMap(too_many_classes(
+                map.classes(),
+                self.max_classes,
+            )));
+        }
         let (model, version) = (map.model().to_owned(), map.map_version().to_owned());
         let digest = map.digest().to_owned();
         let mut written = true;

@@ -2,10 +2,15 @@
 //! (`candor.v1.MapControl`).
 
 mod admin;
+mod limits;
 mod row;
 mod status;
 
 pub use admin::{check_token, model_status, AdminToken, MapControlService, MAX_PUSH_BYTES};
+pub use limits::{
+    client_timeout, deadline_check, InFlight, Limits, DEFAULT_MAX_CLASSES,
+    DEFAULT_MAX_CONCURRENT_REQUESTS, DEFAULT_MAX_MESSAGE_BYTES,
+};
 pub use row::{answer, RowError};
 
 use crate::journal::{Decided, DecisionLog, OutcomeError};
@@ -22,12 +27,13 @@ use std::future::Future;
 use std::pin::Pin;
 use std::sync::Arc;
 use std::task::{Context, Poll};
+use std::time::Duration;
 use std::time::Instant;
-use tokio::sync::watch;
+use tokio::sync::{watch, OwnedSemaphorePermit};
 use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
 
-/// Largest batch accepted in one CalibrateBatch call.
+/// Default largest batch accepted in one CalibrateBatch call (`--max-batch`).
 pub const MAX_BATCH_ROWS: usize = 100_000;
 
 /// Handlers of the Calibrator service over a shared [`Registry`].
@@ -40,6 +46,10 @@ pub struct CalibratorService {
     stats: Arc<RpcStats>,
     /// The decision log, when outcomes are taken back.
     journal: Option<DecisionLog>,
+    /// Message, class, batch and in-flight limits.
+    limits: Limits,
+    /// Slots for requests in flight (shared by every clone).
+    in_flight: InFlight,
 }
 
 impl CalibratorService {
@@ -55,6 +65,34 @@ impl CalibratorService {
             draining,
             stats,
             journal: None,
+            limits: Limits::default(),
+            in_flight: InFlight::new(Limits::default().max_concurrent_requests),
+        }
+    }
+
+    /// Applies `limits` (the message size is the server's to apply, see [`crate::server`]).
+    #[must_use]
+    pub fn with_limits(mut self, limits: Limits) -> Self {
+        self.limits = limits;
+        self.in_flight = InFlight::new(limits.max_concurrent_requests);
+        self
+    }
+
+    /// Admits a request: refuses it with RESOURCE_EXHAUSTED when every in-flight slot is taken,
+    /// counting the refusal. Returns the slot (held until dropped) and the client's timeout. (A
+    /// deadline that has already passed is refused earlier, by [`deadline_check`].)
+    #[inline]
+    fn admit<T>(
+        &self,
+        request: &Request<T>,
+    ) -> Result<(Option<OwnedSemaphorePermit>, Option<Duration>), Status> {
+        let timeout = client_timeout(request.metadata());
+        match self.in_flight.try_enter() {
+            Ok(slot) => Ok((slot, timeout)),
+            Err(max) => {
+                self.stats.error(tonic::Code::ResourceExhausted);
+                Err(status::overloaded(max))
+            }
         }
     }
 
@@ -87,6 +125,13 @@ impl CalibratorService {
 struct Draining<S> {
     rows: S,
     drained: Pin<Box<dyn Future<Output = ()> + Send>>,
+    /// The client's deadline: the stream ends with DEADLINE_EXCEEDED when it passes.
+    deadline: Option<(Pin<Box<tokio::time::Sleep>>, Duration)>,
+    /// Where an ended deadline is counted.
+    stats: Arc<RpcStats>,
+    /// The in-flight slot, released when the stream ends or the client goes away (the
+    /// transport drops the response stream then).
+    _slot: Option<OwnedSemaphorePermit>,
     done: bool,
 }
 
@@ -106,6 +151,14 @@ where
                 "the sidecar is shutting down; open a new stream elsewhere",
             ))));
         }
+        if let Some((sleep, timeout)) = &mut self.deadline {
+            if sleep.as_mut().poll(cx).is_ready() {
+                let timeout = *timeout;
+                self.done = true;
+                self.stats.error(tonic::Code::DeadlineExceeded);
+                return Poll::Ready(Some(Err(status::deadline_passed(timeout))));
+            }
+        }
         let next = Pin::new(&mut self.rows).poll_next(cx);
         if let Poll::Ready(None | Some(Err(_))) = &next {
             self.done = true;
@@ -121,9 +174,17 @@ fn counted(
     req: &CalibrateRequest,
     stats: &RpcStats,
     journal: Option<&DecisionLog>,
+    max_classes: usize,
 ) -> Result<CalibrateResponse, RowError> {
     let started = Instant::now();
-    let r = answer(snapshot, req);
+    let r = if req.logits.len() > max_classes {
+        Err(RowError::TooManyLogits {
+            max: max_classes,
+            got: req.logits.len(),
+        })
+    } else {
+        answer(snapshot, req)
+    };
     match &r {
         Ok(resp) => {
             stats.observe(started.elapsed());
@@ -154,8 +215,9 @@ fn result_of(
     index: usize,
     stats: &RpcStats,
     journal: Option<&DecisionLog>,
+    max_classes: usize,
 ) -> CalibrateResult {
-    let outcome = match counted(snapshot, req, stats, journal) {
+    let outcome = match counted(snapshot, req, stats, journal, max_classes) {
         Ok(r) => Outcome::Response(r),
         Err(e) => {
             tracing::debug!(index, error = %e, "row refused");
@@ -175,10 +237,12 @@ impl Calibrator for CalibratorService {
         &self,
         request: Request<CalibrateRequest>,
     ) -> Result<Response<CalibrateResponse>, Status> {
+        let _slot = self.admit(&request)?;
         let req = request.get_ref();
+        let max = self.limits.max_classes;
         let resp = self
             .registry
-            .with_snapshot(|s| counted(s, req, &self.stats, self.journal.as_ref()))?;
+            .with_snapshot(|s| counted(s, req, &self.stats, self.journal.as_ref(), max))?;
         Ok(Response::new(resp))
     }
 
@@ -186,20 +250,19 @@ impl Calibrator for CalibratorService {
         &self,
         request: Request<CalibrateBatchRequest>,
     ) -> Result<Response<CalibrateBatchResponse>, Status> {
+        let _slot = self.admit(&request)?;
         let rows = &request.get_ref().rows;
-        if rows.len() > MAX_BATCH_ROWS {
+        if rows.len() > self.limits.max_batch {
             self.stats.error(tonic::Code::InvalidArgument);
-            return Err(Status::invalid_argument(format!(
-                "batch has {} rows; at most {MAX_BATCH_ROWS} are accepted",
-                rows.len()
-            )));
+            return Err(status::batch_too_large(rows.len(), self.limits.max_batch));
         }
+        let max = self.limits.max_classes;
         // One snapshot for the whole batch: every row is answered by the same maps.
         let snapshot = self.registry.snapshot();
         let results = rows
             .iter()
             .enumerate()
-            .map(|(i, r)| result_of(&snapshot, r, i, &self.stats, self.journal.as_ref()))
+            .map(|(i, r)| result_of(&snapshot, r, i, &self.stats, self.journal.as_ref(), max))
             .collect();
         Ok(Response::new(CalibrateBatchResponse { results }))
     }
@@ -210,13 +273,16 @@ impl Calibrator for CalibratorService {
         &self,
         request: Request<Streaming<CalibrateRequest>>,
     ) -> Result<Response<Self::CalibrateStreamStream>, Status> {
+        let (slot, timeout) = self.admit(&request)?;
         let registry = self.registry.clone();
         let stats = self.stats.clone();
         let journal = self.journal.clone();
+        let max = self.limits.max_classes;
         let mut index = 0usize;
         let rows = request.into_inner().map(move |item| {
             let req = item?;
-            let r = registry.with_snapshot(|s| result_of(s, &req, index, &stats, journal.as_ref()));
+            let r = registry
+                .with_snapshot(|s| result_of(s, &req, index, &stats, journal.as_ref(), max));
             index += 1;
             Ok(r)
         });
@@ -228,6 +294,9 @@ impl Calibrator for CalibratorService {
         Ok(Response::new(Box::pin(Draining {
             rows,
             drained,
+            deadline: timeout.map(|t| (Box::pin(tokio::time::sleep(t)), t)),
+            stats: self.stats.clone(),
+            _slot: slot,
             done: false,
         })))
     }
@@ -241,7 +310,18 @@ impl Calibrator for CalibratorService {
                 "this sidecar keeps no decision log, so outcomes cannot be joined",
             ));
         }
-        match self.outcome(request.get_ref()).await {
+        let (_slot, timeout) = self.admit(&request)?;
+        let answered = match timeout {
+            None => self.outcome(request.get_ref()).await,
+            Some(t) => match tokio::time::timeout(t, self.outcome(request.get_ref())).await {
+                Ok(r) => r,
+                Err(_) => {
+                    self.stats.error(tonic::Code::DeadlineExceeded);
+                    return Err(status::deadline_passed(t));
+                }
+            },
+        };
+        match answered {
             Ok(r) => Ok(Response::new(r)),
             Err(e) => {
                 let code = status::outcome_code(&e);
@@ -263,9 +343,12 @@ impl Calibrator for CalibratorService {
                 "this sidecar keeps no decision log, so outcomes cannot be joined",
             ));
         }
+        let (slot, _) = self.admit(&request)?;
         let me = self.clone();
         let mut inbound = request.into_inner();
         let out = async_stream_of(move |tx| async move {
+            // Held until the task ends: the inbound stream ends or the client goes away.
+            let _slot = slot;
             let mut index = 0u64;
             while let Some(item) = inbound.next().await {
                 let result = match item {

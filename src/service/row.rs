@@ -32,6 +32,13 @@ pub enum RowError {
         /// Values received.
         got: usize,
     },
+    /// More logits than this sidecar accepts (`--max-classes`); refused before any lookup.
+    TooManyLogits {
+        /// The limit.
+        max: usize,
+        /// Values received.
+        got: usize,
+    },
     /// A NaN or infinite logit.
     NonFinite {
         /// 0-based position.
@@ -69,6 +76,12 @@ impl std::fmt::Display for RowError {
             }
             RowError::LogitsLen { expected, got } => {
                 write!(f, "expected {expected} logits, got {got}")
+            }
+            RowError::TooManyLogits { max, got } => {
+                write!(
+                    f,
+                    "{got} logits; this sidecar accepts at most {max} (--max-classes)"
+                )
             }
             RowError::NonFinite { index, value } => {
                 write!(f, "logits[{index}] is {value}; every logit must be finite")

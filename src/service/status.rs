@@ -2,7 +2,7 @@
 //!
 //! | error | code |
 //! |---|---|
-//! | empty, wrong-length, NaN or infinite logits; empty model with several loaded | INVALID_ARGUMENT |
+//! | empty, wrong-length, NaN or infinite logits; more logits than --max-classes; empty model with several loaded | INVALID_ARGUMENT |
 //! | unknown model; pinned map version not loaded | NOT_FOUND |
 //! | no map loaded yet | UNAVAILABLE |
 
@@ -20,6 +20,7 @@ pub fn code(e: &RowError) -> Code {
         RowError::Lookup(LookupError::ModelRequired { .. })
         | RowError::EmptyLogits { .. }
         | RowError::LogitsLen { .. }
+        | RowError::TooManyLogits { .. }
         | RowError::NonFinite { .. } => Code::InvalidArgument,
     }
 }
@@ -38,6 +39,29 @@ pub fn row_error(e: &RowError, index: usize, request_id: &str) -> crate::proto::
         request_id: request_id.to_owned(),
         index: index as u64,
     }
+}
+
+/// The status of a request refused because every in-flight slot is taken
+/// (`--max-concurrent-requests`): RESOURCE_EXHAUSTED, answered at once.
+pub fn overloaded(max: usize) -> Status {
+    Status::resource_exhausted(format!(
+        "{max} requests are in flight, the most this sidecar takes at once; retry with backoff"
+    ))
+}
+
+/// The status of a request whose client deadline (`grpc-timeout`) passed before it was
+/// answered: DEADLINE_EXCEEDED.
+pub fn deadline_passed(timeout: std::time::Duration) -> Status {
+    Status::deadline_exceeded(format!(
+        "the client's deadline ({timeout:?} after the request arrived) passed"
+    ))
+}
+
+/// The status of a CalibrateBatch request with more rows than `--max-batch`: INVALID_ARGUMENT.
+pub fn batch_too_large(rows: usize, max: usize) -> Status {
+    Status::invalid_argument(format!(
+        "batch has {rows} rows; at most {max} are accepted (--max-batch)"
+    ))
 }
 
 /// The gRPC status for a refused outcome.
