@@ -128,6 +128,15 @@ fn demo_runs_end_to_end_and_calibration_pays_off() {
         "calibrated accepted accuracy meets the 95% policy: {cal_acc}"
     );
     assert!(stdout.contains("2. Serve: 5000 new letters"), "{stdout}");
+    // The demo scrapes its own /metrics before and after serving: the counters moved by exactly
+    // the calibrated row's counts.
+    let watch = stdout
+        .lines()
+        .find(|l| l.starts_with("3. Watch: /metrics on "))
+        .unwrap_or_else(|| panic!("{stdout}"));
+    let moved = format!("accept 0 -> {}, defer 0 -> {}", cal[1], cal[cal.len() - 3]);
+    assert!(watch.ends_with(&moved), "{watch} vs {moved}");
+    assert!(stdout.contains("No drift"), "{stdout}");
 }
 
 #[tokio::test]

@@ -1,15 +1,19 @@
 //! `candor demo`: the main job end to end on the Fernhill Water scenario.
 
 use super::say;
+use super::status::fetch;
 use crate::decision::DecisionPolicy;
 use crate::demo::{self, Letters};
+use crate::journal::{DecisionLog, JournalOptions, SpecLookup};
+use crate::live::{verdict_lines, LiveQuality, WindowSpec};
 use crate::mapfile::{CalibrationMap, MapParts};
 use crate::method::Method;
 use crate::proto::v1::calibrate_result::Outcome;
 use crate::proto::v1::calibrator_client::CalibratorClient;
-use crate::proto::v1::{CalibrateRequest, Decision};
+use crate::proto::v1::{CalibrateRequest, Decision, OutcomeRequest};
 use crate::registry::{load_dir, Registry};
 use crate::server::{run as serve, ServeOptions};
+use crate::telemetry::{run_telemetry, RpcStats, Telemetry};
 use anyhow::Context;
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -22,6 +26,13 @@ pub struct DemoArgs {
     /// (this is how demo-data/ was made).
     #[arg(long, value_name = "DIR")]
     write_data: Option<PathBuf>,
+    /// Address of the demo sidecar's telemetry listener (/metrics, /status).
+    #[arg(long, default_value = "127.0.0.1:0", value_name = "ADDR")]
+    telemetry_listen: std::net::SocketAddr,
+    /// Keep the sidecar running this many seconds after the demo, so /metrics can be scraped and
+    /// `candor status --telemetry ADDR` run against it.
+    #[arg(long, default_value_t = 0, value_name = "SECS")]
+    linger_secs: u64,
 }
 
 /// The uncalibrated baseline: the same policy on plain softmax.
@@ -41,7 +52,7 @@ pub(super) fn run(args: &DemoArgs) -> anyhow::Result<ExitCode> {
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()?;
-    runtime.block_on(run_demo())?;
+    runtime.block_on(run_demo(args))?;
     Ok(ExitCode::SUCCESS)
 }
 
@@ -74,7 +85,22 @@ fn pct(part: usize, whole: usize) -> String {
     }
 }
 
-async fn run_demo() -> anyhow::Result<()> {
+/// Decisions of the letter-sorter model: count of accepted and deferred, from a scrape.
+fn requests_counted(exposition: &str, version: &str) -> (f64, f64) {
+    let value = |decision: &str| {
+        let key = format!(
+            "candor_requests_total{{model=\"{}\",map_version=\"{version}\",decision=\"{decision}\"}}",
+            demo::MODEL
+        );
+        exposition
+            .lines()
+            .find_map(|l| l.strip_prefix(&key)?.trim().parse().ok())
+            .unwrap_or(0.0)
+    };
+    (value("accept"), value("defer"))
+}
+
+async fn run_demo(args: &DemoArgs) -> anyhow::Result<()> {
     let cal = demo::calibration_set();
     let traffic = demo::traffic_set();
     let map = demo::fit_demo_map(&cal)?;
@@ -101,14 +127,39 @@ async fn run_demo() -> anyhow::Result<()> {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let addr = listener.local_addr()?;
     let registry = Registry::new();
-    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let lookup = registry.clone();
+    let spec: SpecLookup = std::sync::Arc::new(move |model: &str, version: &str| {
+        lookup.with_snapshot(|s| {
+            s.version(model, version)
+                .map_or_else(WindowSpec::default, |m| {
+                    WindowSpec::of(&m.map).with_audit_rate(m.audit_rate)
+                })
+        })
+    });
+    let log = DecisionLog::spawn_watched(JournalOptions::default(), spec)?;
+    let stats = std::sync::Arc::new(RpcStats::default());
+    let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+    let stopped = |mut rx: tokio::sync::watch::Receiver<bool>| async move {
+        let _ = rx.wait_for(|s| *s).await;
+    };
     let server = tokio::spawn(serve(
         listener,
         registry.clone(),
-        ServeOptions::default(),
-        async {
-            let _ = stop_rx.await;
+        ServeOptions {
+            stats: stats.clone(),
+            journal: Some(log.clone()),
+            ..ServeOptions::default()
         },
+        stopped(stop_rx.clone()),
+    ));
+    let tl = tokio::net::TcpListener::bind(args.telemetry_listen)
+        .await
+        .with_context(|| format!("binding the telemetry listener {}", args.telemetry_listen))?;
+    let taddr = tl.local_addr()?.to_string();
+    let telemetry = tokio::spawn(run_telemetry(
+        tl,
+        Telemetry::new(registry.clone(), stats).with_live(log),
+        stopped(stop_rx.clone()),
     ));
     let loaded = load_dir(dir.path());
     anyhow::ensure!(
@@ -120,12 +171,37 @@ async fn run_demo() -> anyhow::Result<()> {
     registry.mark_ready();
 
     let mut client = CalibratorClient::connect(format!("http://{addr}")).await?;
+    let version = map.map_version().to_owned();
+    let scrape_0 = requests_counted(&fetch(&taddr, "/metrics").await?, &version);
     let started = Instant::now();
-    let before = stream_through(&mut client, BASELINE_MODEL, &traffic).await?;
-    let after = stream_through(&mut client, demo::MODEL, &traffic).await?;
+    let (before, _) = stream_through(&mut client, BASELINE_MODEL, &traffic).await?;
+    let (after, to_label) = stream_through(&mut client, demo::MODEL, &traffic).await?;
     let elapsed = started.elapsed();
-    let _ = stop_tx.send(());
+    let scrape_1 = requests_counted(&fetch(&taddr, "/metrics").await?, &version);
+    // People label the letters deferred to them and the audit sample of the auto-routed ones.
+    for (request_id, label) in &to_label {
+        client
+            .record_outcome(OutcomeRequest {
+                request_id: request_id.clone(),
+                true_label: *label,
+            })
+            .await?;
+    }
+    let status: serde_json::Value = serde_json::from_str(&fetch(&taddr, "/status").await?)?;
+    let live: Option<LiveQuality> = status["windows"]
+        .as_array()
+        .and_then(|w| w.iter().find(|q| q["model"] == demo::MODEL))
+        .and_then(|q| serde_json::from_value(q.clone()).ok());
+    if args.linger_secs > 0 {
+        say!(
+            "sidecar {addr} with telemetry on {taddr} stays up {} s: try candor status --telemetry {taddr}",
+            args.linger_secs
+        );
+        tokio::time::sleep(std::time::Duration::from_secs(args.linger_secs)).await;
+    }
+    let _ = stop_tx.send(true);
     server.await??;
+    telemetry.await??;
 
     let t = match map.method() {
         Method::Temperature(t) => t.temperature(),
@@ -211,21 +287,39 @@ async fn run_demo() -> anyhow::Result<()> {
         pct(wrong_after, after.accepted)
     );
     say!();
+    say!(
+        "3. Watch: /metrics on {taddr} counted letter-sorter decisions accept {} -> {}, defer {} -> {}",
+        scrape_0.0, scrape_1.0, scrape_0.1, scrape_1.1
+    );
+    say!(
+        "   People labelled the {} deferred letters and the {} in the {:.0}% audit sample of auto-routed ones;",
+        after.deferred,
+        to_label.len() - after.deferred,
+        100.0 * map.policy().audit_rate().unwrap_or(0.0)
+    );
+    say!("   what candor status says about the live window:");
+    if let Some(q) = &live {
+        for line in verdict_lines(q) {
+            say!("   - {line}");
+        }
+    }
+    say!();
     say!("The guarantee holds only while live letters resemble the calibration letters.");
     Ok(())
 }
 
-/// Streams every letter through CalibrateStream for `model` and tallies the decisions.
+/// Streams every letter through CalibrateStream for `model` and tallies the decisions; also
+/// returns (request id, true label) of the letters a person labels: deferred or audited.
 async fn stream_through(
     client: &mut CalibratorClient<tonic::transport::Channel>,
     model: &str,
     letters: &Letters,
-) -> anyhow::Result<Tally> {
+) -> anyhow::Result<(Tally, Vec<(String, u32)>)> {
     let requests: Vec<CalibrateRequest> = (0..letters.len())
         .map(|i| CalibrateRequest {
             model: model.to_owned(),
             logits: letters.row(i).to_vec(),
-            request_id: format!("letter-{i}"),
+            request_id: format!("{model}-letter-{i}"),
             ..CalibrateRequest::default()
         })
         .collect();
@@ -234,13 +328,18 @@ async fn stream_through(
         .await?
         .into_inner();
     let mut tally = Tally::default();
+    let mut to_label = Vec::new();
     let mut i = 0usize;
     while let Some(result) = responses.message().await? {
         let Some(Outcome::Response(r)) = result.outcome else {
             anyhow::bail!("letter {i} was refused: {:?}", result.outcome);
         };
         let right = r.predicted_class == letters.labels[i];
-        tally.add(r.decision == Decision::Accept as i32, right);
+        let accepted = r.decision == Decision::Accept as i32;
+        tally.add(accepted, right);
+        if !accepted || r.audit {
+            to_label.push((format!("{model}-letter-{i}"), letters.labels[i]));
+        }
         i += 1;
     }
     anyhow::ensure!(
@@ -248,5 +347,5 @@ async fn stream_through(
         "stream ended after {i} of {} letters",
         letters.len()
     );
-    Ok(tally)
+    Ok((tally, to_label))
 }

@@ -37,7 +37,8 @@ struct StatusDoc {
     windows: Vec<LiveQuality>,
 }
 
-async fn fetch(addr: &str) -> anyhow::Result<String> {
+/// GET `path` from the telemetry listener at `addr`; the body of a 2xx answer.
+pub(super) async fn fetch(addr: &str, path: &str) -> anyhow::Result<String> {
     let stream = tokio::net::TcpStream::connect(addr)
         .await
         .with_context(|| format!("connecting to the telemetry listener {addr}"))?;
@@ -45,19 +46,19 @@ async fn fetch(addr: &str) -> anyhow::Result<String> {
         .await
         .with_context(|| format!("HTTP handshake with {addr}"))?;
     tokio::spawn(conn);
-    let req = hyper::Request::get("/status")
+    let req = hyper::Request::get(path)
         .header(hyper::header::HOST, addr)
         .body(Empty::<Bytes>::new())?;
     let resp = sender
         .send_request(req)
         .await
-        .with_context(|| format!("GET http://{addr}/status"))?;
+        .with_context(|| format!("GET http://{addr}{path}"))?;
     let code = resp.status();
     let body = resp.into_body().collect().await?.to_bytes();
     let text = String::from_utf8_lossy(&body).into_owned();
     anyhow::ensure!(
         code.is_success(),
-        "GET http://{addr}/status answered {code}: {text}"
+        "GET http://{addr}{path} answered {code}: {text}"
     );
     Ok(text)
 }
@@ -67,7 +68,7 @@ pub(super) fn run(args: &StatusArgs) -> anyhow::Result<ExitCode> {
         .enable_all()
         .build()?;
     let text = rt
-        .block_on(async { tokio::time::timeout(TIMEOUT, fetch(&args.telemetry)).await })
+        .block_on(async { tokio::time::timeout(TIMEOUT, fetch(&args.telemetry, "/status")).await })
         .with_context(|| format!("no answer from {} within {TIMEOUT:?}", args.telemetry))??;
     let doc: StatusDoc = serde_json::from_str(&text)
         .with_context(|| format!("reading /status of {}", args.telemetry))?;
