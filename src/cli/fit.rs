@@ -29,6 +29,19 @@ pub struct FitArgs {
     /// accepted items 1/audit rate, other accepted items are left out (METHODS.md 4.1–4.2).
     #[arg(long, value_name = "DIR", conflicts_with_all = ["logits", "data"])]
     journal: Option<PathBuf>,
+    /// With --journal and temperature scaling: re-estimate the class priors of the most recent
+    /// decisions by EM (label shift, METHODS.md 4.3) and move the map's posteriors to them
+    /// (written as vector scaling). Needs --threshold: a certificate would not survive the shift.
+    #[arg(long, requires = "journal")]
+    prior_shift: bool,
+    /// Most recent journaled decisions whose class mix --prior-shift estimates.
+    #[arg(
+        long,
+        default_value_t = 10_000,
+        value_name = "N",
+        requires = "prior_shift"
+    )]
+    prior_shift_recent: usize,
     /// Recalibration method; `auto` compares the methods that suit the data size and K by
     /// 5-fold cross-validated NLL (ECE breaks ties) and records every candidate's score.
     #[arg(long, value_enum, default_value = "temperature")]

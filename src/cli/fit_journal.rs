@@ -161,8 +161,75 @@ fn weighted_metrics(
     json!({"before": before, "after": side(method)})
 }
 
+/// `--prior-shift`: the class priors of the most recent decisions by EM (METHODS.md 4.3), and the
+/// temperature map rewritten as vector scaling that moves its posteriors to them.
+fn shift_priors(
+    args: &FitArgs,
+    method: &Method,
+    items: &[Item],
+    classes: usize,
+    y: &[u32],
+    w: &[f64],
+) -> anyhow::Result<(Method, serde_json::Value)> {
+    let Method::Temperature(t) = method else {
+        anyhow::bail!(
+            "--prior-shift needs --method temperature (its shift is exact vector scaling)"
+        );
+    };
+    anyhow::ensure!(
+        items[0].logits.len() >= 2,
+        "--prior-shift needs logits (K ≥ 2 values per row), not a binary score"
+    );
+    // Source priors: the weighted class mix of the rows the map was fitted on.
+    let total: f64 = w.iter().sum();
+    let mut source = vec![0.0; classes];
+    for (&label, &wi) in y.iter().zip(w) {
+        source[label as usize] += wi / total;
+    }
+    if let Some(c) = source.iter().position(|&p| p <= 0.0) {
+        anyhow::bail!(
+            "--prior-shift: class {c} has no fitted label, so its prior cannot be re-estimated"
+        );
+    }
+    let recent = &items[items.len().saturating_sub(args.prior_shift_recent)..];
+    let mut ws = Workspace::new();
+    let mut q = Vec::with_capacity(recent.len() * classes);
+    for it in recent {
+        q.extend_from_slice(ws.apply(method, InputForm::Logits, classes, &it.logits));
+    }
+    let em = crate::fit::prior_shift::saerens_em(&q, classes, &source)?;
+    let target = crate::fit::prior_shift::floored(&em.priors);
+    let v = crate::fit::prior_shift::shifted_temperature(t, &source, &target)?;
+    super::say!(
+        "prior shift over the last {} decisions: {:?} -> {:?} ({} EM iterations)",
+        recent.len(),
+        source
+            .iter()
+            .map(|p| (p * 1000.0).round() / 1000.0)
+            .collect::<Vec<_>>(),
+        target
+            .iter()
+            .map(|p| (p * 1000.0).round() / 1000.0)
+            .collect::<Vec<_>>(),
+        em.iterations
+    );
+    let record = json!({
+        "method": "EM re-estimation of class priors (Saerens, Latinne & Decaestecker 2002)",
+        "recent_decisions": recent.len(),
+        "source_priors": source,
+        "target_priors": target,
+        "em": em,
+        "temperature": t.temperature(),
+    });
+    Ok((Method::Vector(v), record))
+}
+
 pub(super) fn run(args: &FitArgs, dir: &Path) -> anyhow::Result<ExitCode> {
     let policy_args = args.policy.for_journal()?;
+    anyhow::ensure!(
+        !(args.prior_shift && policy_args.target_accuracy.is_some()),
+        "--prior-shift changes the posteriors, and a threshold certified under the old class mix is no longer certified (METHODS.md 4.3): give --threshold with --prior-shift"
+    );
     let choice = args.choice().context(
         "--method auto is not available with --journal; name a method (temperature, platt, beta, histogram, isotonic or bbq)",
     )?;
@@ -223,7 +290,13 @@ pub(super) fn run(args: &FitArgs, dir: &Path) -> anyhow::Result<ExitCode> {
     );
     let fitted = fit_choice_weighted(&choice, &x, k, &y, &w, args.seed)
         .with_context(|| format!("fitting {} on the journal", choice.kind()))?;
-    let method = fitted.method.clone();
+    let mut method = fitted.method.clone();
+    let mut shift_record = None;
+    if args.prior_shift {
+        let (shifted, record) = shift_priors(args, &method, &items, classes, &y, &w)?;
+        method = shifted;
+        shift_record = Some(record);
+    }
 
     // New confidences of every journaled item: the drift reference, and the certification.
     let mut ws = Workspace::new();
@@ -334,6 +407,9 @@ pub(super) fn run(args: &FitArgs, dir: &Path) -> anyhow::Result<ExitCode> {
     );
     if let Some(r) = record {
         provenance.insert("certification".into(), r);
+    }
+    if let Some(r) = shift_record {
+        provenance.insert("prior_shift".into(), r);
     }
     provenance.insert("reference".into(), reference.to_value());
     let map = CalibrationMap::from_parts(MapParts {

@@ -18,6 +18,7 @@ mod lbfgs;
 pub mod odir;
 pub mod ovr;
 pub mod platt;
+pub mod prior_shift;
 pub mod select;
 pub mod split;
 pub mod temperature;
