@@ -183,7 +183,7 @@ pub(super) fn run(args: &FitArgs) -> anyhow::Result<ExitCode> {
         LogitsView::F64(v) => fit_on(args, &take_rows(v, set.k(), &fit_idx), set.k(), &fit_labels)?,
     };
     let method = outcome.fitted.method.clone();
-    let policy: PolicyOutcome = choose_policy(
+    let mut policy: PolicyOutcome = choose_policy(
         &args.policy,
         &method,
         &set,
@@ -192,6 +192,7 @@ pub(super) fn run(args: &FitArgs) -> anyhow::Result<ExitCode> {
         certify_rows,
     )?;
 
+    policy.policy = policy.policy.with_audit_rate(args.policy.audit_rate());
     let mut provenance = Map::new();
     provenance.insert(
         "created_at".into(),

@@ -363,11 +363,13 @@ pub(super) fn run(args: &FitArgs, dir: &Path) -> anyhow::Result<ExitCode> {
             vec!["no threshold asked for: every item is deferred".into()],
         ),
     };
-    let audit_rate = items
-        .iter()
-        .rev()
-        .find(|it| it.audit_rate > 0.0)
-        .map(|it| it.audit_rate);
+    let audit_rate = args.policy.audit_rate().or_else(|| {
+        items
+            .iter()
+            .rev()
+            .find(|it| it.audit_rate > 0.0)
+            .map(|it| it.audit_rate)
+    });
     let policy = policy.with_audit_rate(audit_rate);
     let confidences: Vec<f64> = scored.iter().map(|s| s.1).collect();
     let accepted = scored

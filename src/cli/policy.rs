@@ -54,6 +54,19 @@ pub struct PolicyArgs {
     /// Separate CSV or JSON Lines data to certify on, instead of a holdout.
     #[arg(long, value_name = "FILE", conflicts_with = "certify_logits")]
     certify_data: Option<PathBuf>,
+    /// Share of accepted items the sidecar marks for audit with this map (`policy.audit_rate`),
+    /// in [0, 1]; a person checks them too, which is what live accuracy is estimated from.
+    #[arg(long, value_name = "SHARE", value_parser = parse_share)]
+    audit_rate: Option<f64>,
+}
+
+fn parse_share(s: &str) -> Result<f64, String> {
+    let x: f64 = s.parse().map_err(|e| format!("{s:?}: {e}"))?;
+    if (0.0..=1.0).contains(&x) {
+        Ok(x)
+    } else {
+        Err(format!("must lie in [0, 1], got {x}"))
+    }
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
@@ -98,6 +111,11 @@ pub struct JournalPolicy {
 }
 
 impl PolicyArgs {
+    /// `--audit-rate`, when given.
+    pub fn audit_rate(&self) -> Option<f64> {
+        self.audit_rate
+    }
+
     /// The flags for `candor fit --journal`, refusing those it cannot honour.
     ///
     /// # Errors
