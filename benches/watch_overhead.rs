@@ -10,8 +10,7 @@
 //! Run: `cargo bench --bench watch_overhead` (add `-- --quick` for a short run).
 
 use candor::decision::DecisionPolicy;
-use candor::journal::{DecisionLog, JournalOptions, SpecLookup};
-use candor::live::WindowSpec;
+use candor::journal::{DecisionLog, JournalOptions};
 use candor::mapfile::{CalibrationMap, MapParts};
 use candor::method::{InputForm, Method, Temperature};
 use candor::proto::v1::calibrator_client::CalibratorClient;
@@ -129,14 +128,7 @@ async fn main() {
     let off = start(registry.clone(), ServeOptions::default()).await;
 
     let journal_dir = tempfile::tempdir().expect("tempdir");
-    let lookup = registry.clone();
-    let spec: SpecLookup = Arc::new(move |m: &str, v: &str| {
-        lookup.with_snapshot(|s| {
-            s.version(m, v).map_or_else(WindowSpec::default, |sm| {
-                WindowSpec::of(&sm.map).with_audit_rate(sm.audit_rate)
-            })
-        })
-    });
+    let spec = registry.spec_lookup();
     let log = DecisionLog::spawn_watched(
         JournalOptions {
             dir: Some(journal_dir.path().to_owned()),

@@ -4,8 +4,8 @@ use super::say;
 use super::status::fetch;
 use crate::decision::DecisionPolicy;
 use crate::demo::{self, Letters};
-use crate::journal::{DecisionLog, JournalOptions, SpecLookup};
-use crate::live::{verdict_lines, LiveQuality, WindowSpec};
+use crate::journal::{DecisionLog, JournalOptions};
+use crate::live::{verdict_lines, LiveQuality};
 use crate::mapfile::{CalibrationMap, MapParts};
 use crate::method::Method;
 use crate::proto::v1::calibrate_result::Outcome;
@@ -127,15 +127,7 @@ async fn run_demo(args: &DemoArgs) -> anyhow::Result<()> {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let addr = listener.local_addr()?;
     let registry = Registry::new();
-    let lookup = registry.clone();
-    let spec: SpecLookup = std::sync::Arc::new(move |model: &str, version: &str| {
-        lookup.with_snapshot(|s| {
-            s.version(model, version)
-                .map_or_else(WindowSpec::default, |m| {
-                    WindowSpec::of(&m.map).with_audit_rate(m.audit_rate)
-                })
-        })
-    });
+    let spec = registry.spec_lookup();
     let log = DecisionLog::spawn_watched(JournalOptions::default(), spec)?;
     let stats = std::sync::Arc::new(RpcStats::default());
     let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);

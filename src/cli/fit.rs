@@ -235,14 +235,18 @@ pub(super) fn run(args: &FitArgs) -> anyhow::Result<ExitCode> {
         policy: policy.policy.clone(),
         provenance,
     })?;
-    if let Some(parent) = args.out.parent().filter(|p| !p.as_os_str().is_empty()) {
+    write_map(&args.out, &map)?;
+    print_summary(&map, &outcome, &policy);
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Writes the sealed map to `out`, creating its folder.
+fn write_map(out: &std::path::Path, map: &CalibrationMap) -> anyhow::Result<()> {
+    if let Some(parent) = out.parent().filter(|p| !p.as_os_str().is_empty()) {
         std::fs::create_dir_all(parent)
             .with_context(|| format!("creating {}", parent.display()))?;
     }
-    std::fs::write(&args.out, map.to_json())
-        .with_context(|| format!("writing {}", args.out.display()))?;
-    print_summary(&map, &outcome, &policy);
-    Ok(ExitCode::SUCCESS)
+    std::fs::write(out, map.to_json()).with_context(|| format!("writing {}", out.display()))
 }
 
 fn print_summary(map: &CalibrationMap, outcome: &FitOutcome, policy: &PolicyOutcome) {

@@ -8,6 +8,7 @@
 //! threshold is chosen on a holdout of the journal by the stratified bound of
 //! [`crate::decision::stratified`], which also counts the unlabelled accepted items.
 
+use super::super::inputs::input_form;
 use super::{created_at, print_summary, FitArgs, FitOutcome, PolicyOutcome};
 use crate::decision::certify::{default_grid, default_min_accepted};
 use crate::decision::stratified::{certify, StratifiedItem, Stratum};
@@ -106,12 +107,7 @@ fn items(dir: &Path, model: &str) -> anyhow::Result<(Vec<Item>, usize)> {
 
 /// Calibrated top-label (class, confidence) of `logits` under `method`.
 fn top(ws: &mut Workspace, method: &Method, classes: usize, logits: &[f32]) -> (usize, f64) {
-    let form = if logits.len() == 1 {
-        InputForm::BinaryScore
-    } else {
-        InputForm::Logits
-    };
-    let p = ws.apply(method, form, classes, logits);
+    let p = ws.apply(method, input_form(logits.len()), classes, logits);
     let c = crate::numeric::argmax(p);
     (c, p[c])
 }
@@ -136,12 +132,7 @@ fn weighted_metrics(
         let (mut nll, mut total) = (0.0, 0.0);
         let mut labelled = Vec::with_capacity(y.len());
         for ((row, &label), &wi) in x.chunks_exact(k).zip(y).zip(w) {
-            let form = if k == 1 {
-                InputForm::BinaryScore
-            } else {
-                InputForm::Logits
-            };
-            let p = ws.apply(m, form, classes, row);
+            let p = ws.apply(m, input_form(k), classes, row);
             nll -= wi * p[label as usize].max(crate::eval::NLL_CLIP).ln();
             total += wi;
             let c = crate::numeric::argmax(p);
@@ -419,21 +410,12 @@ pub(super) fn run(args: &FitArgs, dir: &Path) -> anyhow::Result<ExitCode> {
         map_version: args.map_version.clone(),
         classes,
         class_names: args.class_names.clone(),
-        input: if k == 1 {
-            InputForm::BinaryScore
-        } else {
-            InputForm::Logits
-        },
+        input: input_form(k),
         method,
         policy: policy.clone(),
         provenance,
     })?;
-    if let Some(parent) = args.out.parent().filter(|p| !p.as_os_str().is_empty()) {
-        std::fs::create_dir_all(parent)
-            .with_context(|| format!("creating {}", parent.display()))?;
-    }
-    std::fs::write(&args.out, map.to_json())
-        .with_context(|| format!("writing {}", args.out.display()))?;
+    super::write_map(&args.out, &map)?;
     super::say!(
         "journal {}: {} decisions of {}, {} labelled, fitted on {} ({} labels of unaudited accepted items left out)",
         dir.display(),

@@ -1,7 +1,7 @@
 //! `candor serve`: configuration parsed once, then the sidecar runs until SIGTERM or SIGINT.
 
-use crate::journal::{DecisionLog, JournalOptions, SpecLookup};
-use crate::live::{WindowSizes, WindowSpec};
+use crate::journal::{DecisionLog, JournalOptions};
+use crate::live::WindowSizes;
 use crate::registry::{spawn_store_watcher, Registry, RegistryOptions, WatchOptions};
 use crate::server::{run as serve, run_admin_with_tls, ServeOptions};
 use crate::service::{self, AdminToken};
@@ -369,15 +369,7 @@ async fn serve_until_signal(
     let r = registry.clone();
     let view = tokio::task::spawn_blocking(move || r.rescan()).await?;
     let stats = Arc::new(RpcStats::default());
-    let lookup = registry.clone();
-    let spec: SpecLookup = Arc::new(move |model: &str, version: &str| {
-        lookup.with_snapshot(|s| {
-            s.version(model, version)
-                .map_or_else(WindowSpec::default, |m| {
-                    WindowSpec::of(&m.map).with_audit_rate(m.audit_rate)
-                })
-        })
-    });
+    let spec = registry.spec_lookup();
     let journal = DecisionLog::spawn_watched(
         JournalOptions {
             dir: args.journal_dir.clone(),

@@ -388,11 +388,13 @@ impl Writer {
                     ..
                 } = &mut r
                 {
-                    self.tracker
-                        .decision(model, map_version, *confidence, *accepted, &*self.spec);
-                    if let Some(s) = self.tracker.spec(model, map_version) {
-                        *audit_rate = s.audit_rate;
-                    }
+                    *audit_rate = self.tracker.decision(
+                        model,
+                        map_version,
+                        *confidence,
+                        *accepted,
+                        &*self.spec,
+                    );
                     if !request_id.is_empty() {
                         self.order.push_back((*at_ms, request_id.clone()));
                         self.recent.insert(

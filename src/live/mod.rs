@@ -337,12 +337,8 @@ impl Tracker {
             .unwrap_or_else(|| unreachable!("inserted above"))
     }
 
-    /// The spec of a window already seen (its audit rate, for the journal).
-    pub fn spec(&self, model: &str, version: &str) -> Option<&WindowSpec> {
-        Some(&self.windows.get(model)?.get(version)?.spec)
-    }
-
     /// Counts one decision; `spec` describes the map the first time a (model, version) is seen.
+    /// Returns the audit rate π in force for that version (for the journal record).
     pub fn decision(
         &mut self,
         model: &str,
@@ -350,10 +346,11 @@ impl Tracker {
         confidence: f32,
         accepted: bool,
         spec: &dyn Fn(&str, &str) -> WindowSpec,
-    ) {
+    ) -> f64 {
         let cap = self.sizes.decisions;
-        self.window(model, version, spec)
-            .push_decision(confidence, accepted, cap);
+        let w = self.window(model, version, spec);
+        w.push_decision(confidence, accepted, cap);
+        w.spec.audit_rate
     }
 
     /// Counts one joined label.

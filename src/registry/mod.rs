@@ -359,6 +359,21 @@ impl Registry {
         *self.ready.borrow()
     }
 
+    /// What the decision log's live-quality windows need to know about each (model, map
+    /// version): the map's reference and promise, and the audit rate applied to it (defaults for
+    /// a version no longer loaded).
+    pub fn spec_lookup(self: &Arc<Self>) -> crate::journal::SpecLookup {
+        let registry = self.clone();
+        Arc::new(move |model: &str, version: &str| {
+            registry.with_snapshot(|s| {
+                s.version(model, version)
+                    .map_or_else(crate::live::WindowSpec::default, |m| {
+                        crate::live::WindowSpec::of(&m.map).with_audit_rate(m.audit_rate)
+                    })
+            })
+        })
+    }
+
     /// (model, map version, accepted, deferred, audited) for every pair served since start,
     /// sorted.
     pub fn decision_counts(&self) -> Vec<(String, String, u64, u64, u64)> {
