@@ -155,6 +155,18 @@ pub fn softmax_scaled_in_place(z: &mut [f64], beta: f64) -> f64 {
     for v in z.iter_mut() {
         *v = exp_nonpositive(beta * (*v - m));
     }
+    let sum = lane_sum(z);
+    let inv = 1.0 / sum;
+    for v in z.iter_mut() {
+        *v *= inv;
+    }
+    beta * m + sum.ln()
+}
+
+/// The sum of `z`, accumulated in eight lanes and reduced in a fixed order: vector-wide, and the
+/// same bits on every instruction set.
+#[inline(always)]
+pub fn lane_sum(z: &[f64]) -> f64 {
     let mut acc = [0.0f64; LANES];
     let chunks = z.chunks_exact(LANES);
     let tail = chunks.remainder();
@@ -163,12 +175,7 @@ pub fn softmax_scaled_in_place(z: &mut [f64], beta: f64) -> f64 {
             *a += v;
         }
     }
-    let sum = acc.iter().sum::<f64>() + tail.iter().sum::<f64>();
-    let inv = 1.0 / sum;
-    for v in z.iter_mut() {
-        *v *= inv;
-    }
-    beta * m + sum.ln()
+    acc.iter().sum::<f64>() + tail.iter().sum::<f64>()
 }
 
 /// Logistic sigmoid `1 / (1 + e^−x)`, evaluated without overflow for either sign.

@@ -183,6 +183,24 @@ pub fn read_journal(dir: &Path) -> Result<JournalRead, String> {
     Ok(out)
 }
 
+/// A decision line written from borrowed parts: serialises exactly as [`Record::Decision`]
+/// (tested), without owning copies of the strings and logits.
+#[derive(Debug, Serialize)]
+pub(super) struct DecisionLine<'a> {
+    pub kind: &'static str,
+    pub at_ms: u64,
+    pub request_id: &'a str,
+    pub model: &'a str,
+    pub map_version: &'a str,
+    pub predicted: u32,
+    pub confidence: f32,
+    pub accepted: bool,
+    pub audit: bool,
+    pub audit_rate: f64,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub logits: Option<&'a [f32]>,
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -206,6 +224,33 @@ mod tests {
         let mut v = serde_json::to_vec(r).unwrap();
         v.push(b'\n');
         v
+    }
+
+    #[test]
+    fn a_borrowed_decision_line_serialises_as_the_record() {
+        for logits in [Some(vec![1.0, -2.5]), None] {
+            let mut owned = decision(7);
+            if let Record::Decision { logits: l, .. } = &mut owned {
+                l.clone_from(&logits);
+            }
+            let borrowed = DecisionLine {
+                kind: "decision",
+                at_ms: 7,
+                request_id: "r7",
+                model: "m",
+                map_version: "v1",
+                predicted: 1,
+                confidence: 0.75,
+                accepted: true,
+                audit: false,
+                audit_rate: 0.05,
+                logits: logits.as_deref(),
+            };
+            assert_eq!(
+                serde_json::to_string(&borrowed).unwrap(),
+                serde_json::to_string(&owned).unwrap()
+            );
+        }
     }
 
     #[test]

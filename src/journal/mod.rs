@@ -13,5 +13,6 @@ mod writer;
 
 pub use file::{read_journal, JournalRead, Record};
 pub use writer::{
-    Decided, DecisionLog, JournalOptions, JournalStats, OutcomeAck, OutcomeError, SpecLookup,
+    Decided, DecisionLog, JournalOptions, JournalStats, MapKey, OutcomeAck, OutcomeError,
+    SpecLookup,
 };

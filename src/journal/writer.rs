@@ -1,6 +1,6 @@
 //! The writer thread: the table of recent decisions (for joining outcomes) and the journal.
 
-use super::file::{JournalFiles, Record};
+use super::file::{DecisionLine, JournalFiles, Record};
 use crate::live::{LabelledDecision, LiveQuality, Tracker, WindowSizes, WindowSpec};
 use arc_swap::ArcSwap;
 use std::collections::{HashMap, VecDeque};
@@ -122,17 +122,25 @@ pub enum OutcomeError {
     Stopped,
 }
 
+/// Which map answered a request: built once per loaded (model, version) and shared by the
+/// registry and the decision log, so handing a decision over copies no names.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct MapKey {
+    /// Model.
+    pub model: String,
+    /// Map version.
+    pub map_version: String,
+    /// Number of classes of the map.
+    pub classes: u32,
+}
+
 /// One answered request, as the service hands it over.
 #[derive(Debug, Clone, Copy)]
 pub struct Decided<'a> {
     /// The caller's id (may be empty: then it cannot be joined to an outcome).
     pub request_id: &'a str,
-    /// Model.
-    pub model: &'a str,
-    /// Map version that answered.
-    pub map_version: &'a str,
-    /// Number of classes of the map.
-    pub classes: u32,
+    /// The map that answered.
+    pub map: &'a Arc<MapKey>,
     /// Predicted class.
     pub predicted: u32,
     /// Calibrated confidence.
@@ -145,9 +153,22 @@ pub struct Decided<'a> {
     pub logits: &'a [f32],
 }
 
+/// A decision on its way to the writer: one owned string (the request id), a shared key, and
+/// the logits only when a journal keeps them.
+struct Pending {
+    at_ms: u64,
+    request_id: String,
+    map: Arc<MapKey>,
+    predicted: u32,
+    confidence: f32,
+    accepted: bool,
+    audit: bool,
+    logits: Option<Vec<f32>>,
+}
+
 enum Entry {
-    /// A decision record and the map's class count.
-    Decision(Record, u32),
+    /// An answered request.
+    Decision(Pending),
     Outcome {
         request_id: String,
         label: u32,
@@ -207,7 +228,8 @@ impl DecisionLog {
         };
         let (tx, rx) = sync_channel(options.queue.max(1));
         let stats = Arc::new(JournalStats::default());
-        let logits = options.logits;
+        // Only a journal reads the logits: without one they are not copied at all.
+        let logits = options.logits && options.dir.is_some();
         let live = Arc::new(ArcSwap::from_pointee(Vec::new()));
         let mut w = Writer {
             rx,
@@ -254,20 +276,17 @@ impl DecisionLog {
     /// Hands one answered request to the writer; drops it (counted) when the writer is behind.
     #[inline]
     pub fn decision(&self, d: &Decided<'_>) {
-        let r = Record::Decision {
+        let p = Pending {
             at_ms: now_ms(),
             request_id: d.request_id.to_owned(),
-            model: d.model.to_owned(),
-            map_version: d.map_version.to_owned(),
+            map: d.map.clone(),
             predicted: d.predicted,
             confidence: d.confidence,
             accepted: d.accepted,
             audit: d.audit,
-            // Filled in by the writer, which knows each version's audit rate.
-            audit_rate: 0.0,
             logits: self.logits.then(|| d.logits.to_vec()),
         };
-        if self.tx.try_send(Entry::Decision(r, d.classes)).is_err() {
+        if self.tx.try_send(Entry::Decision(p)).is_err() {
             self.stats.dropped.fetch_add(1, Ordering::Relaxed);
         }
     }
@@ -297,9 +316,7 @@ impl DecisionLog {
 /// A remembered decision.
 struct Recent {
     at_ms: u64,
-    model: String,
-    map_version: String,
-    classes: u32,
+    map: Arc<MapKey>,
     predicted: u32,
     confidence: f32,
     accepted: bool,
@@ -312,9 +329,9 @@ struct Writer {
     files: Option<JournalFiles>,
     options: JournalOptions,
     stats: Arc<JournalStats>,
-    recent: HashMap<String, Recent>,
+    recent: HashMap<Arc<str>, Recent>,
     /// Request ids in arrival order, for forgetting the oldest.
-    order: VecDeque<(u64, String)>,
+    order: VecDeque<(u64, Arc<str>)>,
     tracker: Tracker,
     spec: SpecLookup,
     live: Arc<ArcSwap<Vec<LiveQuality>>>,
@@ -374,49 +391,49 @@ impl Writer {
                 self.live.store(Arc::new(self.tracker.report()));
                 let _ = done.send(());
             }
-            Entry::Decision(mut r, classes) => {
-                if let Record::Decision {
-                    at_ms,
-                    request_id,
-                    model,
-                    map_version,
-                    predicted,
-                    confidence,
-                    accepted,
-                    audit,
-                    audit_rate,
-                    ..
-                } = &mut r
-                {
-                    *audit_rate = self.tracker.decision(
-                        model,
-                        map_version,
-                        *confidence,
-                        *accepted,
-                        &*self.spec,
-                    );
-                    if !request_id.is_empty() {
-                        self.order.push_back((*at_ms, request_id.clone()));
-                        self.recent.insert(
-                            request_id.clone(),
-                            Recent {
-                                at_ms: *at_ms,
-                                model: model.clone(),
-                                map_version: map_version.clone(),
-                                classes,
-                                predicted: *predicted,
-                                confidence: *confidence,
-                                accepted: *accepted,
-                                audit: *audit,
-                                label: None,
-                            },
-                        );
-                        self.forget_beyond_size();
-                    }
-                }
+            Entry::Decision(p) => {
+                let audit_rate = self.tracker.decision(
+                    &p.map.model,
+                    &p.map.map_version,
+                    p.confidence,
+                    p.accepted,
+                    &*self.spec,
+                );
                 if self.files.is_some() {
-                    push_line(buf, &r);
+                    push_line(
+                        buf,
+                        &DecisionLine {
+                            kind: "decision",
+                            at_ms: p.at_ms,
+                            request_id: &p.request_id,
+                            model: &p.map.model,
+                            map_version: &p.map.map_version,
+                            predicted: p.predicted,
+                            confidence: p.confidence,
+                            accepted: p.accepted,
+                            audit: p.audit,
+                            audit_rate,
+                            logits: p.logits.as_deref(),
+                        },
+                    );
                     *lines += 1;
+                }
+                if !p.request_id.is_empty() {
+                    let id: Arc<str> = Arc::from(p.request_id);
+                    self.order.push_back((p.at_ms, id.clone()));
+                    self.recent.insert(
+                        id,
+                        Recent {
+                            at_ms: p.at_ms,
+                            map: p.map,
+                            predicted: p.predicted,
+                            confidence: p.confidence,
+                            accepted: p.accepted,
+                            audit: p.audit,
+                            label: None,
+                        },
+                    );
+                    self.forget_beyond_size();
                 }
             }
             Entry::Outcome {
@@ -424,12 +441,12 @@ impl Writer {
                 label,
                 reply,
             } => {
-                let Some(d) = self.recent.get_mut(&request_id) else {
+                let Some(d) = self.recent.get_mut(request_id.as_str()) else {
                     let _ = reply.send(Err(OutcomeError::Unknown(request_id)));
                     return;
                 };
-                if label >= d.classes {
-                    let classes = d.classes;
+                if label >= d.map.classes {
+                    let classes = d.map.classes;
                     let _ = reply.send(Err(OutcomeError::LabelOutOfRange {
                         request_id,
                         label,
@@ -438,8 +455,8 @@ impl Writer {
                     return;
                 }
                 let mut ack = OutcomeAck {
-                    model: d.model.clone(),
-                    map_version: d.map_version.clone(),
+                    model: d.map.model.clone(),
+                    map_version: d.map.map_version.clone(),
                     correct: d.predicted == label,
                     duplicate: false,
                     journaled: false,
@@ -462,8 +479,8 @@ impl Writer {
                     None => d.label = Some(label),
                 }
                 self.tracker.outcome(
-                    &d.model,
-                    &d.map_version,
+                    &d.map.model,
+                    &d.map.map_version,
                     LabelledDecision {
                         confidence: f64::from(d.confidence),
                         correct: d.predicted == label,
@@ -478,8 +495,8 @@ impl Writer {
                         &Record::Outcome {
                             at_ms: now_ms(),
                             request_id,
-                            model: d.model.clone(),
-                            map_version: d.map_version.clone(),
+                            model: d.map.model.clone(),
+                            map_version: d.map.map_version.clone(),
                             true_label: label,
                             predicted: d.predicted,
                             accepted: d.accepted,
@@ -521,8 +538,8 @@ impl Writer {
     fn forget_beyond_size(&mut self) {
         while self.order.len() > self.options.remember {
             if let Some((at, id)) = self.order.pop_front() {
-                if self.recent.get(&id).is_some_and(|r| r.at_ms == at) {
-                    self.recent.remove(&id);
+                if self.recent.get(&*id).is_some_and(|r| r.at_ms == at) {
+                    self.recent.remove(&*id);
                 }
             }
         }
@@ -536,15 +553,15 @@ impl Writer {
                 break;
             }
             // Remove only if the table still holds this arrival (an id reused later stays).
-            if self.recent.get(id).is_some_and(|r| r.at_ms == *at) {
-                self.recent.remove(id);
+            if self.recent.get(&**id).is_some_and(|r| r.at_ms == *at) {
+                self.recent.remove(&**id);
             }
             self.order.pop_front();
         }
     }
 }
 
-fn push_line(buf: &mut Vec<u8>, r: &Record) {
+fn push_line<R: serde::Serialize>(buf: &mut Vec<u8>, r: &R) {
     // Serialising a plain struct to a Vec cannot fail.
     let _ = serde_json::to_writer(&mut *buf, r);
     buf.push(b'\n');
@@ -555,6 +572,17 @@ mod tests {
     use super::*;
     use crate::journal::read_journal;
 
+    fn key() -> &'static Arc<MapKey> {
+        static KEY: std::sync::OnceLock<Arc<MapKey>> = std::sync::OnceLock::new();
+        KEY.get_or_init(|| {
+            Arc::new(MapKey {
+                model: "m".into(),
+                map_version: "v1".into(),
+                classes: 3,
+            })
+        })
+    }
+
     fn decided(
         id: &str,
         predicted: u32,
@@ -564,9 +592,7 @@ mod tests {
     ) -> Decided<'_> {
         Decided {
             request_id: id,
-            model: "m",
-            map_version: "v1",
-            classes: 3,
+            map: key(),
             predicted,
             confidence,
             accepted,

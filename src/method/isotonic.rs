@@ -7,22 +7,13 @@
 
 use super::{BinaryMap, Problem, Problems, ScoreKind};
 
-/// Knots per block of the two-level search: one block's x values fill a 64-byte cache line.
-pub const SEARCH_BLOCK: usize = 8;
-/// Up to this many full blocks (512 knots) the interval is found by counting: first the blocks
-/// whose last knot is ≤ s, then the knots ≤ s in the next block, each in one short vectorised
-/// sweep over one or two cache lines. Longer lists use binary search. Counting avoids binary
-/// search's chain of dependent loads, which dominates one-vs-rest rows at K = 1000 (a thousand
-/// short lists per row).
-pub const COUNTED_BLOCKS_MAX: usize = 64;
-
 /// Validated knots: x strictly increasing and finite, y non-decreasing in [0, 1].
 #[derive(Debug, Clone, PartialEq)]
 pub struct Isotonic {
     x: Vec<f64>,
     y: Vec<f64>,
-    /// The last knot of each full block of [`SEARCH_BLOCK`]: x[B−1], x[2B−1], … (derived from x).
-    fences: Vec<f64>,
+    /// slope[i] = (y[i+1] − y[i]) / (x[i+1] − x[i]), and 0 after the last knot (derived).
+    slope: Vec<f64>,
 }
 
 impl Isotonic {
@@ -50,11 +41,8 @@ impl Isotonic {
                 );
             }
         }
-        let fences = x
-            .chunks_exact(SEARCH_BLOCK)
-            .map(|b| b[SEARCH_BLOCK - 1])
-            .collect();
-        p.finish(Isotonic { x, y, fences })
+        let slope = slopes(&x, &y);
+        p.finish(Isotonic { x, y, slope })
     }
 
     /// Knot positions.
@@ -67,17 +55,34 @@ impl Isotonic {
         &self.y
     }
 
-    /// The number of knots ≤ s (x is increasing, so the first knot above s is x at this index).
-    #[inline(always)]
-    fn knots_at_or_below(&self, s: f64) -> usize {
-        if self.fences.len() > COUNTED_BLOCKS_MAX {
-            return self.x.partition_point(|&k| k <= s);
-        }
-        let below = |v: &[f64]| v.iter().map(|&k| usize::from(k <= s)).sum::<usize>();
-        let start = below(&self.fences) * SEARCH_BLOCK;
-        let end = (start + SEARCH_BLOCK).min(self.x.len());
-        start + below(&self.x[start..end])
+    /// The slope of each knot's segment (0 after the last knot).
+    pub fn slopes(&self) -> &[f64] {
+        &self.slope
     }
+}
+
+/// The segment slopes, as numpy's `interp` and scipy's linear `interp1d` compute them (from
+/// memory of their sources): (y[i+1] − y[i]) / (x[i+1] − x[i]). A segment narrower than about
+/// 1e-308 · (y[i+1] − y[i]) would overflow; it gets slope 0 (the value y[i] across a sub-1e-308
+/// gap), so a lookup never computes ∞ · 0. The last knot gets 0, so clipping above x_last needs
+/// no branch.
+fn slopes(x: &[f64], y: &[f64]) -> Vec<f64> {
+    let mut s: Vec<f64> = x
+        .windows(2)
+        .zip(y.windows(2))
+        .map(|(x, y)| {
+            let m = (y[1] - y[0]) / (x[1] - x[0]);
+            if m.is_finite() {
+                m
+            } else {
+                0.0
+            }
+        })
+        .collect();
+    if !x.is_empty() {
+        s.push(0.0);
+    }
+    s
 }
 
 impl BinaryMap for Isotonic {
@@ -85,17 +90,16 @@ impl BinaryMap for Isotonic {
 
     #[inline(always)]
     fn apply(&self, s: f64) -> f64 {
-        let n = self.x.len();
-        if s <= self.x[0] {
-            return self.y[0];
-        }
-        if s >= self.x[n - 1] {
-            return self.y[n - 1];
-        }
-        // First knot strictly above s; s lies in [x[j-1], x[j]).
-        let j = self.knots_at_or_below(s);
-        let (x0, x1, y0, y1) = (self.x[j - 1], self.x[j], self.y[j - 1], self.y[j]);
-        y0 + (y1 - y0) * ((s - x0) / (x1 - x0))
+        // Clipped to [x₀, x_last] (max and min ignore a NaN argument); then s lies in
+        // [x[i], x[i+1]) for i = #{x ≤ s} − 1 ≥ 0, or on x_last, whose slope is 0. The one-vs-rest
+        // table (`knot_table`) computes exactly this, bit for bit.
+        let s = s.max(self.x[0]).min(self.x[self.x.len() - 1]);
+        let i = self.x.partition_point(|&k| k <= s) - 1;
+        self.y[i] + self.slope[i] * (s - self.x[i])
+    }
+
+    fn knots(&self) -> Option<&Isotonic> {
+        Some(self)
     }
 }
 
@@ -134,6 +138,18 @@ mod tests {
         let m = Isotonic::try_new(vec![0.4], vec![0.7], "m").unwrap();
         assert_eq!(m.apply(0.0), 0.7);
         assert_eq!(m.apply(1.0), 0.7);
+    }
+
+    #[test]
+    fn a_segment_too_narrow_for_its_slope_is_flat_and_nan_lands_on_a_knot() {
+        // Two knots one subnormal step apart: (1 − 0) / 5e-324 overflows, so the segment's slope
+        // is 0 and s = x₀ gives y₀ rather than ∞ · 0 = NaN.
+        let tiny = f64::from_bits(1);
+        let m = Isotonic::try_new(vec![0.0, tiny, 0.5], vec![0.0, 1.0, 1.0], "m").unwrap();
+        assert_eq!(m.slopes(), [0.0, 0.0, 0.0]);
+        assert_eq!(m.apply(0.0), 0.0);
+        assert_eq!(m.apply(0.25), 1.0);
+        assert_eq!(m.apply(f64::NAN), 0.0);
     }
 
     #[test]

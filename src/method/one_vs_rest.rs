@@ -10,7 +10,8 @@
 //! - Fallback: when Σ_j u_j = 0 (every map says 0) the row becomes uniform 1/K, as scikit-learn's
 //!   one-vs-rest calibration does (METHODS.md 2.11, source-read there).
 
-use super::{Problem, Problems};
+use super::knot_table::KnotTable;
+use super::{Isotonic, Problem, Problems};
 use crate::numeric::{ln_one_minus_exp, lse, max, softmax_in_place};
 
 /// Which number a binary map reads.
@@ -28,12 +29,19 @@ pub trait BinaryMap {
     const SCORE: ScoreKind;
     /// P(class | score), in [0, 1]. `score` is never NaN.
     fn apply(&self, score: f64) -> f64;
+    /// The knots, when the map is isotonic: a row of such maps is then looked up in one packed
+    /// [`KnotTable`] instead of map by map.
+    fn knots(&self) -> Option<&Isotonic> {
+        None
+    }
 }
 
 /// One binary map per calibrated class: one for K = 2 (class 1), K for K ≥ 3.
 #[derive(Debug, Clone, PartialEq)]
 pub struct OneVsRest<M> {
     maps: Vec<M>,
+    /// The maps' knots packed for K ≥ 3 rows, when every map has knots (derived from `maps`).
+    table: Option<KnotTable>,
 }
 
 impl<M: BinaryMap> OneVsRest<M> {
@@ -55,7 +63,15 @@ impl<M: BinaryMap> OneVsRest<M> {
                 ),
             );
         }
-        p.finish(OneVsRest { maps })
+        let table = if maps.len() >= 3 {
+            maps.iter()
+                .map(M::knots)
+                .collect::<Option<Vec<&Isotonic>>>()
+                .and_then(|knots| KnotTable::new(&knots))
+        } else {
+            None
+        };
+        p.finish(OneVsRest { maps, table })
     }
 
     /// How many maps K classes need.
@@ -74,7 +90,7 @@ impl<M: BinaryMap> OneVsRest<M> {
 
     /// Overwrites a row of logits with calibrated probabilities by the rule in the module docs.
     #[inline(always)]
-    pub fn apply_in_place(&self, z: &mut [f64], _scratch: &mut Vec<f64>) {
+    pub fn apply_in_place(&self, z: &mut [f64], scratch: &mut Vec<f64>) {
         if z.len() == 2 {
             let f = z[1] - z[0];
             let f = if f.is_nan() { 0.0 } else { f }; // (+∞) − (+∞): an undecided pair.
@@ -92,9 +108,13 @@ impl<M: BinaryMap> OneVsRest<M> {
             // The scores are softmax(z): one vectorised pass (one exp per class) instead of
             // lse and a libm exp per class, a third of the cost of an isotonic row at K = 1000.
             softmax_in_place(z);
-            for (v, map) in z.iter_mut().zip(&self.maps) {
-                *v = map.apply(*v).clamp(0.0, 1.0);
-                sum += *v;
+            if let Some(t) = &self.table {
+                sum = t.apply_row(z, scratch);
+            } else {
+                for (v, map) in z.iter_mut().zip(&self.maps) {
+                    *v = map.apply(*v).clamp(0.0, 1.0);
+                    sum += *v;
+                }
             }
         } else {
             let norm = lse(z);

@@ -49,7 +49,7 @@ fn methods(k: usize, rng: &mut ChaCha8Rng) -> Vec<Method> {
         Method::Isotonic(
             OneVsRest::try_new(
                 k,
-                vec![isotonic(COUNTED_BLOCKS_MAX * SEARCH_BLOCK + 9); n],
+                vec![isotonic((FENCE_BLOCKS_MAX * KNOT_BLOCK + 1) * KNOT_BLOCK + 9); n],
                 "m",
             )
             .unwrap(),
@@ -118,13 +118,13 @@ fn every_instruction_set_gives_the_same_bits() {
 
 #[test]
 fn knot_counting_finds_the_same_interval_as_binary_search() {
-    // The two searches in Isotonic::apply agree: evaluate one curve stored with few knots
-    // (counted) and with the same knots padded past the limit by exact midpoints (searched).
-    let limit = COUNTED_BLOCKS_MAX * SEARCH_BLOCK;
+    // The two searches of the one-vs-rest knot table agree: evaluate one curve stored with few
+    // knots (counted) and with the same knots padded past the limit by exact midpoints (searched).
+    let limit = (FENCE_BLOCKS_MAX * KNOT_BLOCK + 1) * KNOT_BLOCK;
     let few = limit / 2 + 45;
     let x: Vec<f64> = (0..few).map(|i| i as f64 / (few - 1) as f64).collect();
     let y: Vec<f64> = x.iter().map(|v| v.sqrt()).collect();
-    assert!(few <= limit && !few.is_multiple_of(SEARCH_BLOCK));
+    assert!(few <= limit && !few.is_multiple_of(KNOT_BLOCK));
     let short = Isotonic::try_new(x.clone(), y.clone(), "m").unwrap();
     let (mut xl, mut yl) = (Vec::new(), Vec::new());
     for i in 0..few {
@@ -137,6 +137,7 @@ fn knot_counting_finds_the_same_interval_as_binary_search() {
     }
     let long = Isotonic::try_new(xl, yl, "m").unwrap();
     assert!(long.x().len() > limit);
+    let table = KnotTable::new(&[&short, &long, &short]).unwrap();
     // Points in the first block, on fences, in the last (partial) block and on knots.
     for s in [
         0.0,
@@ -153,7 +154,7 @@ fn knot_counting_finds_the_same_interval_as_binary_search() {
         1.0,
     ] {
         // Linear interpolation of a linear interpolation at its own midpoints: the same line.
-        let (a, b) = (short.apply(s), long.apply(s));
+        let (a, b) = (table.value(0, s), table.value(1, s));
         assert!((a - b).abs() <= 1e-15, "s = {s}: {a} vs {b}");
     }
 }

@@ -387,6 +387,11 @@ impl Rollout {
             .or(map.policy().audit_rate())
             .unwrap_or(0.0);
         Arc::new(ServedMap {
+            key: Arc::new(crate::journal::MapKey {
+                model: map.model().to_owned(),
+                map_version: map.map_version().to_owned(),
+                classes: u32::try_from(map.classes()).unwrap_or(u32::MAX),
+            }),
             map,
             counters,
             audit_cut: cut_for(audit_rate),

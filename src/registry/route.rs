@@ -29,6 +29,8 @@ const CHANGE_SCALE: f64 = 1e9;
 pub struct ServedMap {
     /// The validated map.
     pub map: CalibrationMap,
+    /// Its model, version and classes, shared with the decision log.
+    pub key: Arc<crate::journal::MapKey>,
     /// Shared with every snapshot that serves this (model, version).
     pub counters: Arc<DecisionCounters>,
     /// Accepted items whose request-id hash falls below this cut are marked for audit.
@@ -244,6 +246,11 @@ mod tests {
         use crate::mapfile::MapParts;
         use crate::method::{InputForm, Method};
         ServedMap {
+            key: Arc::new(crate::journal::MapKey {
+                model: "m".into(),
+                map_version: "v1".into(),
+                classes: 2,
+            }),
             map: CalibrationMap::from_parts(MapParts {
                 model: "m".into(),
                 map_version: "v1".into(),

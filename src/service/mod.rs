@@ -183,19 +183,15 @@ fn counted(
             got: req.logits.len(),
         })
     } else {
-        answer(snapshot, req)
+        row::answer_by(snapshot, req)
     };
-    match &r {
-        Ok(resp) => {
+    match r {
+        Ok((resp, served)) => {
             stats.observe(started.elapsed());
             if let Some(j) = journal {
                 j.decision(&Decided {
                     request_id: &req.request_id,
-                    model: &req.model,
-                    map_version: &resp.map_version,
-                    classes: snapshot
-                        .get(&req.model)
-                        .map_or(0, |m| m.active().map.classes() as u32),
+                    map: &served.key,
                     predicted: resp.predicted_class,
                     confidence: resp.confidence,
                     accepted: resp.decision == crate::proto::v1::Decision::Accept as i32,
@@ -203,10 +199,13 @@ fn counted(
                     logits: &req.logits,
                 });
             }
+            Ok(resp)
         }
-        Err(e) => stats.error(status::code(e)),
+        Err(e) => {
+            stats.error(status::code(&e));
+            Err(e)
+        }
     }
-    r
 }
 
 fn result_of(

@@ -7,8 +7,9 @@ use crate::method::Workspace;
 use crate::proto::v1::{
     CalibrateRequest, CalibrateResponse, Decision as PbDecision, Route as PbRoute,
 };
-use crate::registry::{LookupError, Route, Snapshot};
+use crate::registry::{LookupError, Route, ServedMap, Snapshot};
 use std::cell::RefCell;
+use std::sync::Arc;
 
 thread_local! {
     /// One workspace per worker thread: grown once to the largest K, then reused.
@@ -98,6 +99,18 @@ impl std::fmt::Display for RowError {
 /// [`RowError`] for an unknown model or version, missing maps or bad logits; nothing is counted
 /// then.
 pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateResponse, RowError> {
+    answer_by(snapshot, req).map(|(resp, _)| resp)
+}
+
+/// [`answer`], also returning the map version that answered.
+///
+/// # Errors
+/// As [`answer`].
+#[inline]
+pub fn answer_by<'s>(
+    snapshot: &'s Snapshot,
+    req: &CalibrateRequest,
+) -> Result<(CalibrateResponse, &'s Arc<ServedMap>), RowError> {
     let route = snapshot.get(&req.model).map_err(RowError::Lookup)?;
     let (served, how) = route
         .pick(&req.request_id, &req.map_version)
@@ -171,7 +184,7 @@ pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateRe
     served.counters.record(accepted, resp.audit);
     resp.map_version = map.map_version().to_owned();
     resp.request_id.clone_from(&req.request_id);
-    Ok(resp)
+    Ok((resp, served))
 }
 
 /// The `top_k` largest probabilities, largest first (ties: smaller class first), with classes.
