@@ -135,7 +135,7 @@ pub struct MapKey {
 }
 
 /// One answered request, as the service hands it over.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone)]
 pub struct Decided<'a> {
     /// The caller's id (may be empty: then it cannot be joined to an outcome).
     pub request_id: &'a str,
@@ -149,8 +149,9 @@ pub struct Decided<'a> {
     pub accepted: bool,
     /// In the audit sample.
     pub audit: bool,
-    /// The raw logits.
-    pub logits: &'a [f32],
+    /// The raw logits (moved into the record when the log keeps them, else dropped; see
+    /// [`DecisionLog::keeps_logits`]).
+    pub logits: Vec<f32>,
 }
 
 /// A decision on its way to the writer: one owned string (the request id), a shared key, and
@@ -273,9 +274,16 @@ impl DecisionLog {
         &self.stats
     }
 
+    /// True when decision records keep the raw logits (a journal directory is set and logits
+    /// are not switched off): only then does [`DecisionLog::decision`] need them.
+    #[inline]
+    pub fn keeps_logits(&self) -> bool {
+        self.logits
+    }
+
     /// Hands one answered request to the writer; drops it (counted) when the writer is behind.
     #[inline]
-    pub fn decision(&self, d: &Decided<'_>) {
+    pub fn decision(&self, d: Decided<'_>) {
         let p = Pending {
             at_ms: now_ms(),
             request_id: d.request_id.to_owned(),
@@ -284,7 +292,7 @@ impl DecisionLog {
             confidence: d.confidence,
             accepted: d.accepted,
             audit: d.audit,
-            logits: self.logits.then(|| d.logits.to_vec()),
+            logits: self.logits.then_some(d.logits),
         };
         if self.tx.try_send(Entry::Decision(p)).is_err() {
             self.stats.dropped.fetch_add(1, Ordering::Relaxed);
@@ -597,7 +605,7 @@ mod tests {
             confidence,
             accepted,
             audit,
-            logits: &[0.0, 1.0, 3.0],
+            logits: vec![0.0, 1.0, 3.0],
         }
     }
 
@@ -610,8 +618,8 @@ mod tests {
             ..JournalOptions::default()
         })
         .unwrap();
-        log.decision(&decided("a", 2, 0.9, true, true));
-        log.decision(&decided("b", 0, 0.4, false, false));
+        log.decision(decided("a", 2, 0.9, true, true));
+        log.decision(decided("b", 0, 0.4, false, false));
         let ack = log.outcome("a", 2).await.unwrap();
         assert!(ack.correct && ack.journaled && !ack.duplicate);
         let again = log.outcome("a", 2).await.unwrap();
@@ -652,7 +660,7 @@ mod tests {
         })
         .unwrap();
         for id in ["a", "b", "c"] {
-            log.decision(&decided(id, 0, 0.9, true, false));
+            log.decision(decided(id, 0, 0.9, true, false));
         }
         let rt = tokio::runtime::Builder::new_current_thread()
             .build()

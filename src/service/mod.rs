@@ -11,7 +11,7 @@ pub use limits::{
     client_timeout, deadline_check, InFlight, Limits, DEFAULT_MAX_CLASSES,
     DEFAULT_MAX_CONCURRENT_REQUESTS, DEFAULT_MAX_MESSAGE_BYTES,
 };
-pub use row::{answer, RowError};
+pub use row::{answer, answer_by, RowError};
 
 use crate::journal::{Decided, DecisionLog, OutcomeError};
 use crate::proto::v1::calibrator_server::Calibrator;
@@ -167,36 +167,39 @@ where
     }
 }
 
-/// Answers one request, counting its latency or its error code, and hands it to the journal.
+/// Answers one request, counting its latency or its error code, and hands it to the journal
+/// (the request id is copied once, for the journal; the logits move to the journal when it keeps
+/// them, and otherwise their buffer carries the probabilities).
 #[inline]
 fn counted(
     snapshot: &Snapshot,
-    req: &CalibrateRequest,
+    req: &mut CalibrateRequest,
     stats: &RpcStats,
     journal: Option<&DecisionLog>,
     max_classes: usize,
 ) -> Result<CalibrateResponse, RowError> {
     let started = Instant::now();
+    let keep_logits = journal.is_some_and(DecisionLog::keeps_logits);
     let r = if req.logits.len() > max_classes {
         Err(RowError::TooManyLogits {
             max: max_classes,
             got: req.logits.len(),
         })
     } else {
-        row::answer_by(snapshot, req)
+        answer_by(snapshot, req, !keep_logits)
     };
     match r {
         Ok((resp, served)) => {
             stats.observe(started.elapsed());
             if let Some(j) = journal {
-                j.decision(&Decided {
-                    request_id: &req.request_id,
+                j.decision(Decided {
+                    request_id: &resp.request_id,
                     map: &served.key,
                     predicted: resp.predicted_class,
                     confidence: resp.confidence,
                     accepted: resp.decision == crate::proto::v1::Decision::Accept as i32,
                     audit: resp.audit,
-                    logits: &req.logits,
+                    logits: std::mem::take(&mut req.logits),
                 });
             }
             Ok(resp)
@@ -210,13 +213,13 @@ fn counted(
 
 fn result_of(
     snapshot: &Snapshot,
-    req: &CalibrateRequest,
+    mut req: CalibrateRequest,
     index: usize,
     stats: &RpcStats,
     journal: Option<&DecisionLog>,
     max_classes: usize,
 ) -> CalibrateResult {
-    let outcome = match counted(snapshot, req, stats, journal, max_classes) {
+    let outcome = match counted(snapshot, &mut req, stats, journal, max_classes) {
         Ok(r) => Outcome::Response(r),
         Err(e) => {
             tracing::debug!(index, error = %e, "row refused");
@@ -237,11 +240,11 @@ impl Calibrator for CalibratorService {
         request: Request<CalibrateRequest>,
     ) -> Result<Response<CalibrateResponse>, Status> {
         let _slot = self.admit(&request)?;
-        let req = request.get_ref();
+        let mut req = request.into_inner();
         let max = self.limits.max_classes;
         let resp = self
             .registry
-            .with_snapshot(|s| counted(s, req, &self.stats, self.journal.as_ref(), max))?;
+            .with_snapshot(|s| counted(s, &mut req, &self.stats, self.journal.as_ref(), max))?;
         Ok(Response::new(resp))
     }
 
@@ -250,7 +253,7 @@ impl Calibrator for CalibratorService {
         request: Request<CalibrateBatchRequest>,
     ) -> Result<Response<CalibrateBatchResponse>, Status> {
         let _slot = self.admit(&request)?;
-        let rows = &request.get_ref().rows;
+        let rows = request.into_inner().rows;
         if rows.len() > self.limits.max_batch {
             self.stats.error(tonic::Code::InvalidArgument);
             return Err(status::batch_too_large(rows.len(), self.limits.max_batch));
@@ -259,7 +262,7 @@ impl Calibrator for CalibratorService {
         // One snapshot for the whole batch: every row is answered by the same maps.
         let snapshot = self.registry.snapshot();
         let results = rows
-            .iter()
+            .into_iter()
             .enumerate()
             .map(|(i, r)| result_of(&snapshot, r, i, &self.stats, self.journal.as_ref(), max))
             .collect();
@@ -280,8 +283,8 @@ impl Calibrator for CalibratorService {
         let mut index = 0usize;
         let rows = request.into_inner().map(move |item| {
             let req = item?;
-            let r = registry
-                .with_snapshot(|s| result_of(s, &req, index, &stats, journal.as_ref(), max));
+            let r =
+                registry.with_snapshot(|s| result_of(s, req, index, &stats, journal.as_ref(), max));
             index += 1;
             Ok(r)
         });

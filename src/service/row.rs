@@ -99,17 +99,22 @@ impl std::fmt::Display for RowError {
 /// [`RowError`] for an unknown model or version, missing maps or bad logits; nothing is counted
 /// then.
 pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateResponse, RowError> {
-    answer_by(snapshot, req).map(|(resp, _)| resp)
+    answer_by(snapshot, &mut req.clone(), false).map(|(resp, _)| resp)
 }
 
-/// [`answer`], also returning the map version that answered.
+/// [`answer`] for an owned request, also returning the map version that answered. On success
+/// the request id moves into the response, and with `reuse_logits` the logits' buffer carries
+/// the response's probabilities (the logits are read into the workspace first), so the answer
+/// allocates only the version name; without it the logits stay in `req`. On error `req` is
+/// untouched.
 ///
 /// # Errors
 /// As [`answer`].
 #[inline]
 pub fn answer_by<'s>(
     snapshot: &'s Snapshot,
-    req: &CalibrateRequest,
+    req: &mut CalibrateRequest,
+    reuse_logits: bool,
 ) -> Result<(CalibrateResponse, &'s Arc<ServedMap>), RowError> {
     let route = snapshot.get(&req.model).map_err(RowError::Lookup)?;
     let (served, how) = route
@@ -142,7 +147,15 @@ pub fn answer_by<'s>(
         let predicted = crate::numeric::argmax(q);
         let confidence = q[predicted];
         let (probabilities, classes) = if top_k == 0 {
-            (q.iter().map(|&v| v as f32).collect(), Vec::new())
+            // A shadow version still reads the logits below.
+            let mut out = if reuse_logits && shadow.is_none() {
+                std::mem::take(&mut req.logits)
+            } else {
+                Vec::with_capacity(k)
+            };
+            out.clear();
+            out.extend(q.iter().map(|&v| v as f32));
+            (out, Vec::new())
         } else {
             top_entries(q, top_k)
         };
@@ -183,7 +196,7 @@ pub fn answer_by<'s>(
     resp.audit = accepted && served.audits(&req.request_id);
     served.counters.record(accepted, resp.audit);
     resp.map_version = map.map_version().to_owned();
-    resp.request_id.clone_from(&req.request_id);
+    resp.request_id = std::mem::take(&mut req.request_id);
     Ok((resp, served))
 }
 
@@ -203,6 +216,55 @@ fn top_entries(q: &[f64], top_k: usize) -> (Vec<f32>, Vec<u32>) {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn an_owned_answer_reuses_the_logits_buffer_or_leaves_the_logits() {
+        use crate::decision::DecisionPolicy;
+        use crate::mapfile::{CalibrationMap, MapParts};
+        use crate::method::{InputForm, Method, Temperature};
+        let registry = crate::registry::Registry::new();
+        registry.publish(vec![CalibrationMap::from_parts(MapParts {
+            model: "m".into(),
+            map_version: "v1".into(),
+            classes: 3,
+            class_names: None,
+            input: InputForm::Logits,
+            method: Method::Temperature(Temperature::try_new(2.0, "t").unwrap()),
+            policy: DecisionPolicy::global(0.5),
+            provenance: serde_json::Map::new(),
+        })
+        .unwrap()]);
+        let req = CalibrateRequest {
+            model: "m".into(),
+            request_id: "r-1".into(),
+            logits: vec![0.5, 2.0, -1.0],
+            ..CalibrateRequest::default()
+        };
+        let snapshot = registry.snapshot();
+        let want = answer(&snapshot, &req).unwrap();
+        for reuse in [true, false] {
+            let mut owned = req.clone();
+            let buffer = owned.logits.as_ptr();
+            let (resp, served) = answer_by(&snapshot, &mut owned, reuse).unwrap();
+            assert_eq!(resp, want);
+            assert_eq!(served.key.map_version, "v1");
+            assert!(owned.request_id.is_empty());
+            if reuse {
+                assert!(owned.logits.is_empty());
+                assert_eq!(resp.probabilities.as_ptr(), buffer);
+            } else {
+                assert_eq!(owned.logits, req.logits);
+            }
+        }
+        // A refused row leaves the request as it was.
+        let mut bad = CalibrateRequest {
+            logits: vec![0.5, f32::NAN, 1.0],
+            ..req.clone()
+        };
+        assert!(answer_by(&snapshot, &mut bad, true).is_err());
+        assert_eq!(bad.request_id, "r-1");
+        assert_eq!(bad.logits.len(), 3);
+    }
 
     #[test]
     fn top_entries_are_sorted_with_stable_ties() {
