@@ -13,8 +13,12 @@
 //!
 //! The client is `candor bench`'s load generator (`candor::loadgen`) on a one-thread runtime in
 //! this process: unary Calibrate, one connection, 256 seeded payloads checked before timing (for
-//! candor and Python against the offline apply of the map). Each round measures every server once
-//! in a rotated order; server CPU time is utime + stime from /proc/PID/stat over the timed window.
+//! candor and Python against the offline apply of the map). With two or more CPUs the load
+//! generator is pinned to the first and every server to the last (`--no-pin` to leave the
+//! scheduler free): a server's figures are then those of one core, and the client and server do
+//! not trade cores between runs, which made unpinned runs vary by ±15%. Each round measures
+//! every server once in a rotated order; server CPU time is utime + stime from /proc/PID/stat
+//! over the timed window.
 //! Everything measured is also written to `target/tmp/sidecar-compare/results.json`.
 
 mod floor;
@@ -79,6 +83,11 @@ struct Args {
     /// Extra flag for `candor serve` (repeatable).
     #[arg(long = "serve-arg", allow_hyphen_values = true)]
     serve_args: Vec<String>,
+    /// Do not pin: by default, with two or more CPUs, the load generator runs on the first CPU
+    /// and every server on the last (`taskset`), so a server's throughput is what one core
+    /// takes and the two sides do not trade places between runs.
+    #[arg(long)]
+    no_pin: bool,
     /// Run as the transport floor server (internal).
     #[arg(long, hide = true)]
     floor: bool,
@@ -99,13 +108,24 @@ fn main() -> Result<(), Failure> {
     let work = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("sidecar-compare");
     let mut serve_args: Vec<String> = TELEMETRY_SERVE_ARGS.iter().map(|s| s.to_string()).collect();
     serve_args.extend(args.serve_args.iter().cloned());
-    let mut results = json!({"machine": machine()});
+    let cpus = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let pin = if args.no_pin || cpus < 2 {
+        None
+    } else {
+        servers::pin_self(0)?;
+        Some(cpus - 1)
+    };
+    let mut results = json!({"machine": machine(),
+        "pinning": pin.map(|cpu| json!({"load_generator_cpu": 0, "server_cpu": cpu}))});
+    if let Some(cpu) = pin {
+        eprintln!("load generator pinned to CPU 0, servers to CPU {cpu}");
+    }
     if !args.memory_only {
-        let (cells, ratios, met) = compare(&args, &runtime, &work, &serve_args)?;
+        let (cells, ratios, met) = compare(&args, &runtime, &work, &serve_args, pin)?;
         results["comparison"] = json!({"cells": cells, "ratios": ratios, "targets_met": met});
     }
     if !args.no_memory || args.memory_only {
-        results["memory"] = memory::measure(&runtime, &work.join("matrix-maps"), &serve_args)?;
+        results["memory"] = memory::measure(&runtime, &work.join("matrix-maps"), &serve_args, pin)?;
     }
     std::fs::create_dir_all(&work)?;
     let out = work.join("results.json");
@@ -136,6 +156,7 @@ fn compare(
     runtime: &tokio::runtime::Runtime,
     work: &std::path::Path,
     serve_args: &[String],
+    pin: servers::Pin,
 ) -> Result<Compared, Failure> {
     let rounds = args
         .rounds
@@ -163,12 +184,12 @@ fn compare(
         let short = ["floor", "temperature", "isotonic", "python"][s];
         args.servers.is_empty() || args.servers.iter().any(|n| n == short)
     };
-    let floor = servers::floor()?;
-    let candor = servers::candor(runtime, &map_dir, serve_args, READY_TIMEOUT)?;
+    let floor = servers::floor(pin)?;
+    let candor = servers::candor(runtime, &map_dir, serve_args, READY_TIMEOUT, pin)?;
     let python = if args.no_python || !wanted(3) {
         None
     } else {
-        Some(servers::python(&python_files)?)
+        Some(servers::python(&python_files, pin)?)
     };
     eprintln!(
         "servers: floor pid {} on {}, candor pid {} on {}{}",

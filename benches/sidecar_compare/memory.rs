@@ -26,6 +26,7 @@ pub fn measure(
     runtime: &tokio::runtime::Runtime,
     dir: &Path,
     serve_args: &[String],
+    pin: servers::Pin,
 ) -> Result<Value, Failure> {
     let started = Instant::now();
     let files = maps::matrix_set(dir, MAPS, CLASSES)?;
@@ -37,7 +38,7 @@ pub fn measure(
     let parameter_bytes = MAPS as u64 * maps::matrix_parameter_bytes(CLASSES);
 
     let loading = Instant::now();
-    let server = servers::candor(runtime, dir, serve_args, LOAD_TIMEOUT)?;
+    let server = servers::candor(runtime, dir, serve_args, LOAD_TIMEOUT, pin)?;
     let load_secs = loading.elapsed().as_secs_f64();
     let rss_loaded = server.resident_bytes()?;
     // Touch every map once: each answer runs the K × K product and grows the worker's workspace.

@@ -16,6 +16,41 @@ use tonic_health::pb::HealthCheckRequest;
 
 use crate::Failure;
 
+/// Which CPU the servers run on, when they are pinned.
+pub type Pin = Option<usize>;
+
+/// Pins this process (every thread: the load generator's) to `cpu` with `taskset`.
+pub fn pin_self(cpu: usize) -> Result<(), Failure> {
+    let status = Command::new("taskset")
+        .args([
+            "-a",
+            "-p",
+            "-c",
+            &cpu.to_string(),
+            &std::process::id().to_string(),
+        ])
+        .stdout(Stdio::null())
+        .status()
+        .map_err(|e| format!("cannot run taskset: {e}"))?;
+    if !status.success() {
+        return Err(format!("taskset could not pin the load generator to CPU {cpu}").into());
+    }
+    Ok(())
+}
+
+/// A command running `program`, on CPU `pin` when set (`taskset` sets the affinity and then
+/// runs the program in its own process, so the pid is the server's).
+fn command(pin: Pin, program: impl AsRef<std::ffi::OsStr>) -> Command {
+    match pin {
+        None => Command::new(program),
+        Some(cpu) => {
+            let mut c = Command::new("taskset");
+            c.args(["-c", &cpu.to_string()]).arg(program);
+            c
+        }
+    }
+}
+
 /// How long a server may take to announce its address.
 const ANNOUNCE_TIMEOUT: Duration = Duration::from_secs(60);
 /// Lines of a child's output kept for error messages.
@@ -130,10 +165,10 @@ fn candor_listening(line: &str) -> Option<SocketAddr> {
 }
 
 /// The transport floor: this benchmark binary re-invoked with `--floor`.
-pub fn floor() -> Result<Server, Failure> {
+pub fn floor(pin: Pin) -> Result<Server, Failure> {
     start(
         "floor",
-        Command::new(std::env::current_exe()?).arg("--floor"),
+        command(pin, std::env::current_exe()?).arg("--floor"),
         false,
         listening_line,
     )
@@ -146,10 +181,11 @@ pub fn candor(
     dir: &Path,
     extra: &[String],
     ready_timeout: Duration,
+    pin: Pin,
 ) -> Result<Server, Failure> {
     let server = start(
         "candor",
-        Command::new(env!("CARGO_BIN_EXE_candor"))
+        command(pin, env!("CARGO_BIN_EXE_candor"))
             .args([
                 "serve",
                 "--listen",
@@ -199,11 +235,11 @@ async fn serving(addr: SocketAddr) -> Result<(), Failure> {
 }
 
 /// The hand-written Python server (bench/python_server.py) serving the temperature `maps`.
-pub fn python(maps: &[std::path::PathBuf]) -> Result<Server, Failure> {
+pub fn python(maps: &[std::path::PathBuf], pin: Pin) -> Result<Server, Failure> {
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/bench/python_server.py");
     start(
         "python",
-        Command::new("python3")
+        command(pin, "python3")
             .arg(script)
             .args(["--listen", "127.0.0.1:0"])
             .args(maps),
