@@ -226,7 +226,22 @@ pub fn logit(s: f64, eps: f64) -> f64 {
 #[inline]
 pub fn argmax(q: &[f64]) -> usize {
     let m = max_lanes(q);
-    q.iter().position(|&v| v == m).unwrap_or(0)
+    // Eight at a time: one vector compare and a mask per chunk instead of a branch per value.
+    let chunks = q.chunks_exact(LANES);
+    let tail = q.len() - chunks.remainder().len();
+    for (i, c) in chunks.enumerate() {
+        let mut hit = 0u32;
+        for (t, &v) in c.iter().enumerate() {
+            hit |= u32::from(v == m) << t;
+        }
+        if hit != 0 {
+            return i * LANES + hit.trailing_zeros() as usize;
+        }
+    }
+    q[tail..]
+        .iter()
+        .position(|&v| v == m)
+        .map_or(0, |p| tail + p)
 }
 
 /// True when every value is finite; scans the whole slice without early exit so the loop
@@ -353,6 +368,23 @@ mod tests {
             softmax_in_place(&mut z);
             for (a, b) in z.iter().zip(&want) {
                 assert!((a - b).abs() <= 1e-15, "k = {k}: {a} vs {b}");
+            }
+        }
+    }
+
+    #[test]
+    fn argmax_is_the_first_maximum_across_chunks_and_tail() {
+        // Against a plain scan, with the maximum repeated in and across chunks of eight and in
+        // the tail.
+        for k in [1usize, 7, 8, 9, 16, 23, 1000] {
+            for first in [0, k / 3, k - 1] {
+                let mut q: Vec<f64> = (0..k).map(|i| (i % 5) as f64 * 0.1).collect();
+                q[first] = 2.0;
+                if first + 9 < k {
+                    q[first + 9] = 2.0;
+                }
+                let want = q.iter().position(|&v| v == 2.0).unwrap();
+                assert_eq!(argmax(&q), want, "k = {k}, first = {first}");
             }
         }
     }

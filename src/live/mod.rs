@@ -322,18 +322,20 @@ impl Tracker {
         version: &str,
         spec: &dyn Fn(&str, &str) -> WindowSpec,
     ) -> &mut Window {
-        if !self.windows.contains_key(model) {
-            self.windows.insert(model.to_owned(), BTreeMap::new());
-        }
-        let versions = self
+        // Two lookups in the common case (the window exists): this runs once per decision.
+        let known = self
             .windows
-            .get_mut(model)
-            .unwrap_or_else(|| unreachable!("inserted above"));
-        if !versions.contains_key(version) {
-            versions.insert(version.to_owned(), Window::new(spec(model, version)));
+            .get(model)
+            .is_some_and(|v| v.contains_key(version));
+        if !known {
+            self.windows
+                .entry(model.to_owned())
+                .or_default()
+                .insert(version.to_owned(), Window::new(spec(model, version)));
         }
-        versions
-            .get_mut(version)
+        self.windows
+            .get_mut(model)
+            .and_then(|v| v.get_mut(version))
             .unwrap_or_else(|| unreachable!("inserted above"))
     }
 

@@ -149,7 +149,43 @@ impl WithSimd for ApplyJob<'_> {
     }
 }
 
+/// The argmax of an applied row and, when asked, the row narrowed to f32, as a job for
+/// [`Arch::dispatch`] like [`ApplyJob`].
+struct FinishJob<'a> {
+    q: &'a [f64],
+    out: Option<&'a mut Vec<f32>>,
+}
+
+impl WithSimd for FinishJob<'_> {
+    type Output = usize;
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, _simd: S) -> usize {
+        if let Some(out) = self.out {
+            out.clear();
+            out.resize(self.q.len(), 0.0);
+            // A plain loop (see numeric::softmax_scaled_in_place on closures).
+            for (o, &v) in out.iter_mut().zip(self.q) {
+                *o = v as f32;
+            }
+        }
+        crate::numeric::argmax(self.q)
+    }
+}
+
 impl Workspace {
+    /// The class of the largest probability of the row last returned by [`Workspace::apply`]
+    /// (the first on ties), and with `out`, that row narrowed to f32 into `out` (cleared first;
+    /// its capacity is reused). Compiled for the widest vector instructions, as the apply is.
+    pub fn argmax_narrowed(&self, out: Option<&mut Vec<f32>>) -> usize {
+        self.arch.dispatch(FinishJob { q: &self.z, out })
+    }
+
+    /// The row last returned by [`Workspace::apply`].
+    pub fn row(&self) -> &[f64] {
+        &self.z
+    }
+
     /// An empty workspace; it grows to the largest K it is used with.
     pub fn new() -> Self {
         Self::default()

@@ -158,3 +158,25 @@ fn knot_counting_finds_the_same_interval_as_binary_search() {
         assert!((a - b).abs() <= 1e-15, "s = {s}: {a} vs {b}");
     }
 }
+
+#[test]
+fn the_argmax_and_narrowed_row_match_plain_code_on_every_instruction_set() {
+    let mut rng = ChaCha8Rng::seed_from_u64(12);
+    let method = Method::Temperature(Temperature::try_new(1.3, "t").unwrap());
+    for k in [2usize, 9, 1000] {
+        let row: Vec<f32> = (0..k)
+            .map(|_| (2.0 * rng.sample::<f64, _>(StandardNormal)) as f32)
+            .collect();
+        for arch in [Arch::Scalar, Arch::new()] {
+            let mut ws = Workspace::with_arch(arch);
+            let q = ws.apply(&method, InputForm::Logits, k, &row).to_vec();
+            let mut out = vec![7.0f32; 3];
+            let best = ws.argmax_narrowed(Some(&mut out));
+            assert_eq!(best, crate::numeric::argmax(&q));
+            let want: Vec<f32> = q.iter().map(|&v| v as f32).collect();
+            assert_eq!(out, want);
+            assert_eq!(ws.argmax_narrowed(None), best);
+            assert_eq!(ws.row(), q);
+        }
+    }
+}

@@ -143,21 +143,22 @@ pub fn answer_by<'s>(
     let top_k = (req.top_k as usize).min(k);
     let shadow = route.shadow().filter(|_| how == Route::Active);
     let mut resp = WORKSPACE.with_borrow_mut(|ws| {
-        let q = ws.apply(map.method(), map.input(), k, &req.logits);
-        let predicted = crate::numeric::argmax(q);
-        let confidence = q[predicted];
-        let (probabilities, classes) = if top_k == 0 {
-            // A shadow version still reads the logits below.
-            let mut out = if reuse_logits && shadow.is_none() {
+        ws.apply(map.method(), map.input(), k, &req.logits);
+        // All K probabilities go back unless the caller asked for the top few; a shadow version
+        // still reads the logits below, so their buffer is reused only without one.
+        let mut out = (top_k == 0).then(|| {
+            if reuse_logits && shadow.is_none() {
                 std::mem::take(&mut req.logits)
             } else {
                 Vec::with_capacity(k)
-            };
-            out.clear();
-            out.extend(q.iter().map(|&v| v as f32));
-            (out, Vec::new())
-        } else {
-            top_entries(q, top_k)
+            }
+        });
+        let predicted = ws.argmax_narrowed(out.as_mut());
+        let q = ws.row();
+        let confidence = q[predicted];
+        let (probabilities, classes) = match out {
+            Some(all) => (all, Vec::new()),
+            None => top_entries(q, top_k),
         };
         let accept = map.policy().decide(predicted, confidence) == Decision::Accept;
         if let Some((candidate, stats)) = shadow {
