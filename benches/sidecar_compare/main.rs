@@ -108,6 +108,8 @@ fn main() -> Result<(), Failure> {
     let work = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("sidecar-compare");
     let mut serve_args: Vec<String> = TELEMETRY_SERVE_ARGS.iter().map(|s| s.to_string()).collect();
     serve_args.extend(args.serve_args.iter().cloned());
+    // Read before pinning, which leaves this process one CPU.
+    let machine = machine();
     let cpus = std::thread::available_parallelism().map_or(1, |n| n.get());
     let pin = if args.no_pin || cpus < 2 {
         None
@@ -115,7 +117,7 @@ fn main() -> Result<(), Failure> {
         servers::pin_self(0)?;
         Some(cpus - 1)
     };
-    let mut results = json!({"machine": machine(),
+    let mut results = json!({"machine": machine,
         "pinning": pin.map(|cpu| json!({"load_generator_cpu": 0, "server_cpu": cpu}))});
     if let Some(cpu) = pin {
         eprintln!("load generator pinned to CPU 0, servers to CPU {cpu}");

@@ -81,13 +81,17 @@ pub fn matrix_parameter_bytes(k: usize) -> u64 {
     ((k * k + k) * std::mem::size_of::<f64>()) as u64
 }
 
-/// `count` matrix scaling maps of K classes in `dir/<model>/map.json` (one folder per model),
+/// `count` matrix scaling maps of K classes in `dir/<model>/<version>.json` (the store's folder
+/// layout: one folder per model, the file named after the map version),
 /// written once: a `complete` marker lets later runs reuse them. W = I + seeded N(0, 0.01²)
 /// off-diagonals rounded to 4 decimals; b = 0.
 pub fn matrix_set(dir: &Path, count: usize, k: usize) -> Result<Vec<PathBuf>, Failure> {
     let marker = dir.join("complete");
     let files: Vec<PathBuf> = (0..count)
-        .map(|i| dir.join(format!("matrix-{i:03}")).join("map.json"))
+        .map(|i| {
+            let model = format!("matrix-{i:03}");
+            dir.join(&model).join(format!("{model}.1.json"))
+        })
         .collect();
     if marker.exists() && files.iter().all(|f| f.exists()) {
         return Ok(files);

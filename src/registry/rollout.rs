@@ -220,7 +220,7 @@ struct ModelState {
 impl ModelState {
     fn active_map(&self) -> Option<&CalibrationMap> {
         let v = self.active.as_ref()?;
-        self.versions.get(v).map(|l| &l.served.map)
+        self.versions.get(v).map(|l| &*l.served.map)
     }
 
     fn is_referenced(&self, version: &str) -> bool {
@@ -379,7 +379,7 @@ impl Rollout {
         });
     }
 
-    fn served(&mut self, map: CalibrationMap) -> Arc<ServedMap> {
+    fn served(&mut self, map: Arc<CalibrationMap>) -> Arc<ServedMap> {
         let key = (map.model().to_owned(), map.map_version().to_owned());
         let counters = self.counters.entry(key).or_default().clone();
         let audit_rate = self
@@ -404,7 +404,7 @@ impl Rollout {
         self.models.clear();
         for map in maps {
             let (model, version) = (map.model().to_owned(), map.map_version().to_owned());
-            let served = self.served(map);
+            let served = self.served(Arc::new(map));
             let st = self.models.entry(model.clone()).or_default();
             st.versions.clear();
             st.versions
@@ -562,7 +562,7 @@ impl Rollout {
                 path = %path.display(),
                 "map loaded"
             );
-            let served = self.served(CalibrationMap::clone(map));
+            let served = self.served(Arc::clone(map));
             st.versions.insert(
                 version.clone(),
                 Loaded {

@@ -27,8 +27,8 @@ const CHANGE_SCALE: f64 = 1e9;
 /// A loaded, valid map version with the counters of its (model, version).
 #[derive(Debug)]
 pub struct ServedMap {
-    /// The validated map.
-    pub map: CalibrationMap,
+    /// The validated map (shared with the store's file cache: parameters are held once).
+    pub map: Arc<CalibrationMap>,
     /// Its model, version and classes, shared with the decision log.
     pub key: Arc<crate::journal::MapKey>,
     /// Shared with every snapshot that serves this (model, version).
@@ -251,17 +251,19 @@ mod tests {
                 map_version: "v1".into(),
                 classes: 2,
             }),
-            map: CalibrationMap::from_parts(MapParts {
-                model: "m".into(),
-                map_version: "v1".into(),
-                classes: 2,
-                class_names: None,
-                input: InputForm::Logits,
-                method: Method::Identity,
-                policy: DecisionPolicy::global(0.5),
-                provenance: serde_json::Map::new(),
-            })
-            .unwrap(),
+            map: Arc::new(
+                CalibrationMap::from_parts(MapParts {
+                    model: "m".into(),
+                    map_version: "v1".into(),
+                    classes: 2,
+                    class_names: None,
+                    input: InputForm::Logits,
+                    method: Method::Identity,
+                    policy: DecisionPolicy::global(0.5),
+                    provenance: serde_json::Map::new(),
+                })
+                .unwrap(),
+            ),
             counters: Arc::default(),
             audit_cut: 0,
             audit_rate: 0.0,
