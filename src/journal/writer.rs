@@ -643,7 +643,19 @@ mod tests {
         ));
         let ack = log.outcome("b", 1).await.unwrap();
         assert!(!ack.correct);
+        assert!(log.keeps_logits(), "a journal directory keeps the logits");
         let read = read_journal(dir.path()).unwrap();
+        let Some(Record::Decision {
+            model,
+            map_version,
+            logits,
+            ..
+        }) = read.records.first()
+        else {
+            panic!("the first record is a decision: {:?}", read.records.first());
+        };
+        assert_eq!((model.as_str(), map_version.as_str()), ("m", "v1"));
+        assert_eq!(logits.as_deref(), Some(&[0.0f32, 1.0, 3.0][..]));
         let outcomes = read
             .records
             .iter()
@@ -659,6 +671,10 @@ mod tests {
             ..JournalOptions::default()
         })
         .unwrap();
+        assert!(
+            !log.keeps_logits(),
+            "without a journal the logits are not copied"
+        );
         for id in ["a", "b", "c"] {
             log.decision(decided(id, 0, 0.9, true, false));
         }

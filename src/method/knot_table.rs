@@ -174,14 +174,8 @@ impl KnotTable {
         if s < self.first_end[class] {
             self.first_y[class] + self.first_slope[class] * (s - self.lo[class])
         } else {
-            self.past_first(class, s)
+            self.segment_value(class, self.knots_at_or_below(class, s) - 1, s)
         }
-    }
-
-    /// The value of class `c` at a clipped score s ≥ x₁.
-    #[inline(always)]
-    fn past_first(&self, c: usize, s: f64) -> f64 {
-        self.segment_value(c, self.knots_at_or_below(c, s) - 1, s)
     }
 
     /// j = #{x ≤ s} of class `c` for a clipped score s ≥ x₁ (so j ≥ 2).

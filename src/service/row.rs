@@ -99,7 +99,8 @@ impl std::fmt::Display for RowError {
 /// [`RowError`] for an unknown model or version, missing maps or bad logits; nothing is counted
 /// then.
 pub fn answer(snapshot: &Snapshot, req: &CalibrateRequest) -> Result<CalibrateResponse, RowError> {
-    answer_by(snapshot, &mut req.clone(), false).map(|(resp, _)| resp)
+    // The copy is this call's own, so its logits' buffer can carry the probabilities.
+    answer_by(snapshot, &mut req.clone(), true).map(|(resp, _)| resp)
 }
 
 /// [`answer`] for an owned request, also returning the map version that answered. On success
