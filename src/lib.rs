@@ -24,7 +24,9 @@
 //! - [`demo`] — the demo scenario and its deterministic data generator.
 //! - [`loadgen`] — the closed-loop load generator behind `candor bench`.
 //! - [`cli`] — the `candor` command line.
-#![forbid(unsafe_code)]
+//! - [`heap`] — giving freed memory back to the system after maps are read (the crate's one
+//!   `unsafe` call, glibc's `malloc_trim`).
+#![deny(unsafe_code)]
 
 pub mod cli;
 pub mod dataset;
@@ -32,6 +34,7 @@ pub mod decision;
 pub mod demo;
 pub mod eval;
 pub mod fit;
+pub mod heap;
 pub mod journal;
 pub mod live;
 pub mod loadgen;

@@ -254,16 +254,30 @@ impl Registry {
     /// Reads the store again and publishes what changed. Releases the readiness latch once every
     /// model seen has an active version and no unattributed file was refused.
     ///
-    /// Blocking: reads files. Returns the view after the scan.
+    /// Blocking: reads files. Returns the view after the scan. After a scan that read files, the
+    /// memory their parsing freed is given back to the system (see [`crate::heap`]).
     pub fn rescan(&self) -> RolloutView {
-        let mut r = self.lock();
-        if r.rescan() {
-            self.publish_from(&r);
+        let (view, read) = {
+            let mut r = self.lock();
+            let before = r.files_read();
+            if r.rescan() {
+                self.publish_from(&r);
+            }
+            if r.ready() {
+                self.mark_ready();
+            }
+            (r.view(), r.files_read() != before)
+        };
+        if read {
+            let started = std::time::Instant::now();
+            let released = crate::heap::release_freed();
+            tracing::debug!(
+                released,
+                micros = started.elapsed().as_micros() as u64,
+                "gave the memory freed by reading maps back to the system"
+            );
         }
-        if r.ready() {
-            self.mark_ready();
-        }
-        r.view()
+        view
     }
 
     /// What every model serves, with versions, canary, shadow and recent rejections.
@@ -283,12 +297,16 @@ impl Registry {
         bytes: &[u8],
         activate: bool,
     ) -> Result<(String, String, String, bool), RolloutError> {
-        let mut r = self.lock();
-        let out = r.push(bytes, activate);
-        self.publish_from(&r);
-        if r.ready() {
-            self.mark_ready();
-        }
+        let out = {
+            let mut r = self.lock();
+            let out = r.push(bytes, activate);
+            self.publish_from(&r);
+            if r.ready() {
+                self.mark_ready();
+            }
+            out
+        };
+        crate::heap::release_freed();
         out
     }
 

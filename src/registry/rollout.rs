@@ -276,6 +276,8 @@ pub(super) struct Rollout {
     rejections: VecDeque<RejectionView>,
     rejections_total: u64,
     publishes_total: u64,
+    /// Map files parsed by scans so far (a file unchanged since its last scan is not re-read).
+    files_read: u64,
     /// Refused files at the latest scan that belong to no served model.
     unserved: usize,
     /// Audit cut given to every map loaded.
@@ -346,6 +348,7 @@ impl Rollout {
             rejections: VecDeque::new(),
             rejections_total: 0,
             publishes_total: 0,
+            files_read: 0,
             unserved: 0,
             audit_override: None,
             max_classes: crate::service::DEFAULT_MAX_CLASSES,
@@ -416,6 +419,11 @@ impl Rollout {
 
     /// True when the maps are ready to serve: at least one model is active, every model has an
     /// active version, and no refused file belongs to a model that is not served.
+    /// Map files parsed by scans so far.
+    pub(super) fn files_read(&self) -> u64 {
+        self.files_read
+    }
+
     pub(super) fn ready(&self) -> bool {
         !self.models.is_empty()
             && self.models.values().all(|m| m.active.is_some())
@@ -437,6 +445,7 @@ impl Rollout {
             return false;
         }
         self.last_dir_error = None;
+        self.files_read += scan.files.iter().filter(|f| f.fresh).count() as u64;
         let mut found: BTreeMap<String, Vec<(PathBuf, Arc<CalibrationMap>, bool)>> =
             BTreeMap::new();
         let mut refused: BTreeMap<Option<String>, Vec<(String, PathBuf, String)>> = BTreeMap::new();

@@ -413,3 +413,28 @@ fn a_loaded_map_is_held_once_by_the_file_cache_and_the_served_version() {
     let still = again.get("triage").unwrap().active();
     assert!(Arc::ptr_eq(&served.map, &still.map));
 }
+
+#[test]
+fn a_scan_counts_the_files_it_parsed_and_not_those_it_reused() {
+    // The registry gives freed parse memory back to the system only after a scan that parsed
+    // something; an unchanged store must not count as read.
+    let (dir, r) = triage_v1_store();
+    assert_eq!(r.lock().files_read(), 1);
+    r.rescan();
+    assert_eq!(r.lock().files_read(), 1, "an unchanged file is reused");
+    put(
+        dir.path(),
+        "triage/v2.json",
+        &map("triage", "v2", 3, 1.5, ""),
+    );
+    r.rescan();
+    assert_eq!(r.lock().files_read(), 2, "only the new file is parsed");
+    std::fs::write(dir.path().join("triage/broken.json"), "{").unwrap();
+    r.rescan();
+    r.rescan();
+    assert_eq!(
+        r.lock().files_read(),
+        3,
+        "a refused file is parsed once too"
+    );
+}
