@@ -17,7 +17,17 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         out.join("candor_descriptor.bin"),
         prost::Message::encode_to_vec(&fds),
     )?;
+    // The two data-plane messages are written by hand (src/proto/messages.rs) so that their
+    // float arrays are encoded and decoded in bulk.
     tonic_prost_build::configure()
+        .extern_path(
+            ".candor.v1.CalibrateRequest",
+            "crate::proto::messages::CalibrateRequest",
+        )
+        .extern_path(
+            ".candor.v1.CalibrateResponse",
+            "crate::proto::messages::CalibrateResponse",
+        )
         .build_client(true)
         .build_server(true)
         .compile_fds(fds)?;

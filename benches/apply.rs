@@ -2,16 +2,20 @@
 //!
 //! Targets (issue: the sidecar): temperature with K = 1000 under 5 µs, K = 10 under 0.3 µs per
 //! request. `workspace/*` measures the numerical apply; `answer/*` the whole hot path of one
-//! Calibrate request (lookup, checks, apply, decision, response vector).
+//! Calibrate request (lookup, checks, apply, decision, response vector); `wire/*` decoding a
+//! request and encoding a response of K floats, candor's messages against what prost generates
+//! for the same fields.
 
 use candor::decision::DecisionPolicy;
 use candor::mapfile::{CalibrationMap, MapParts};
 use candor::method::{
     InputForm, Isotonic, Method, OneVsRest, Temperature, VectorScaling, Workspace,
 };
-use candor::proto::v1::CalibrateRequest;
+use candor::proto::twins::{GeneratedRequest, GeneratedResponse};
+use candor::proto::v1::{CalibrateRequest, CalibrateResponse};
 use candor::registry::Registry;
 use criterion::{criterion_group, criterion_main, BatchSize, BenchmarkId, Criterion};
+use prost::Message as _;
 use std::hint::black_box;
 
 fn logits(k: usize) -> Vec<f32> {
@@ -117,5 +121,54 @@ fn bench_apply(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, bench_apply);
+fn bench_wire(c: &mut Criterion) {
+    let mut g = c.benchmark_group("wire");
+    for k in [10usize, 1000] {
+        let req = CalibrateRequest {
+            model: "triage".into(),
+            logits: logits(k),
+            request_id: "req-000001".into(),
+            ..Default::default()
+        };
+        let bytes = req.encode_to_vec();
+        g.bench_function(BenchmarkId::new("decode_request", k), |b| {
+            b.iter(|| CalibrateRequest::decode(black_box(bytes.as_slice())).unwrap())
+        });
+        g.bench_function(BenchmarkId::new("decode_request_generated", k), |b| {
+            b.iter(|| GeneratedRequest::decode(black_box(bytes.as_slice())).unwrap())
+        });
+        let resp = CalibrateResponse {
+            probabilities: logits(k),
+            predicted_class: 3,
+            confidence: 0.5,
+            map_version: "v1".into(),
+            request_id: "req-000001".into(),
+            ..Default::default()
+        };
+        let generated = GeneratedResponse {
+            probabilities: resp.probabilities.clone(),
+            predicted_class: 3,
+            confidence: 0.5,
+            map_version: "v1".into(),
+            request_id: "req-000001".into(),
+            ..Default::default()
+        };
+        let mut out = Vec::with_capacity(resp.encoded_len());
+        g.bench_function(BenchmarkId::new("encode_response", k), |b| {
+            b.iter(|| {
+                out.clear();
+                black_box(&resp).encode(&mut out).unwrap();
+            })
+        });
+        g.bench_function(BenchmarkId::new("encode_response_generated", k), |b| {
+            b.iter(|| {
+                out.clear();
+                black_box(&generated).encode(&mut out).unwrap();
+            })
+        });
+    }
+    g.finish();
+}
+
+criterion_group!(benches, bench_apply, bench_wire);
 criterion_main!(benches);

@@ -1,11 +1,17 @@
-//! The transport floor: a bare tonic implementation of `candor.v1.Calibrator` that answers every
+//! The transport floors: bare tonic implementations of `candor.v1.Calibrator` that answer every
 //! row with its own logits, untouched, as the probabilities (the same-sized payload back, no
-//! calibration). It runs in a child process (this benchmark re-invoked with `--floor`) so its CPU
-//! time can be read from /proc like any other server's.
+//! calibration). Each runs in a child process (this benchmark re-invoked with `--floor` or
+//! `--floor --bulk`) so its CPU time can be read from /proc like any other server's.
+//! - The floor: the message types prost generates for `candor.v1`, served the way tonic's
+//!   generated server code serves them. What a bare tonic service costs.
+//! - The bulk floor: candor's own message types, whose float arrays are encoded and decoded in
+//!   bulk (`candor::proto::messages`). The same transport as `candor serve`, so candor's figures
+//!   over it are what calibrating costs on top of the transport.
 //!
-//! Its transport settings are tonic's defaults, as `Server::builder().serve(addr)` would use them
+//! Transport settings are tonic's defaults, as `Server::builder().serve(addr)` would use them
 //! (including TCP_NODELAY on accepted sockets): the floor is what tonic gives for free.
 
+use candor::proto::twins::{GeneratedRequest, GeneratedResponse};
 use candor::proto::v1::calibrate_result::Outcome;
 use candor::proto::v1::calibrator_server::{Calibrator, CalibratorServer};
 use candor::proto::v1::{
@@ -15,6 +21,7 @@ use candor::proto::v1::{
 };
 use std::pin::Pin;
 use tokio_stream::{Stream, StreamExt};
+use tonic::codegen::{http, Body, BoxFuture, Context, Poll, Service, StdError};
 use tonic::transport::server::TcpIncoming;
 use tonic::{Request, Response, Status, Streaming};
 
@@ -105,9 +112,77 @@ impl Calibrator for Floor {
     }
 }
 
+/// The floor's Calibrate on prost's generated messages.
+struct GeneratedEcho;
+
+impl tonic::server::UnaryService<GeneratedRequest> for GeneratedEcho {
+    type Response = GeneratedResponse;
+    type Future = BoxFuture<Response<GeneratedResponse>, Status>;
+
+    fn call(&mut self, request: Request<GeneratedRequest>) -> Self::Future {
+        let req = request.into_inner();
+        Box::pin(async move {
+            Ok(Response::new(GeneratedResponse {
+                probabilities: req.logits,
+                request_id: req.request_id,
+                ..Default::default()
+            }))
+        })
+    }
+}
+
+/// `candor.v1.Calibrator` with prost's generated messages: Calibrate echoes, every other method
+/// is UNIMPLEMENTED. The dispatch is what tonic's generated server does for one unary method.
+#[derive(Debug, Clone, Copy)]
+struct GeneratedFloor;
+
+impl tonic::server::NamedService for GeneratedFloor {
+    const NAME: &'static str = "candor.v1.Calibrator";
+}
+
+impl<B> Service<http::Request<B>> for GeneratedFloor
+where
+    B: Body + Send + 'static,
+    B::Error: Into<StdError> + Send + 'static,
+{
+    type Response = http::Response<tonic::body::Body>;
+    type Error = std::convert::Infallible;
+    type Future = BoxFuture<Self::Response, Self::Error>;
+
+    fn poll_ready(&mut self, _cx: &mut Context<'_>) -> Poll<Result<(), Self::Error>> {
+        Poll::Ready(Ok(()))
+    }
+
+    fn call(&mut self, req: http::Request<B>) -> Self::Future {
+        if req.uri().path() == "/candor.v1.Calibrator/Calibrate" {
+            return Box::pin(async move {
+                let codec =
+                    tonic_prost::ProstCodec::<GeneratedResponse, GeneratedRequest>::default();
+                Ok(tonic::server::Grpc::new(codec)
+                    .unary(GeneratedEcho, req)
+                    .await)
+            });
+        }
+        Box::pin(async move {
+            let mut response = http::Response::new(tonic::body::Body::default());
+            let headers = response.headers_mut();
+            headers.insert(
+                Status::GRPC_STATUS,
+                (tonic::Code::Unimplemented as i32).into(),
+            );
+            headers.insert(
+                http::header::CONTENT_TYPE,
+                tonic::metadata::GRPC_CONTENT_TYPE,
+            );
+            Ok(response)
+        })
+    }
+}
+
 /// The child process: bind a loopback port, print `listening ADDR`, serve until killed. The
-/// runtime is built like `candor serve`'s (multi-threaded, one worker per core).
-pub fn serve_child() -> Result<(), Box<dyn std::error::Error>> {
+/// runtime is built like `candor serve`'s (multi-threaded, one worker per core). `bulk` serves
+/// candor's message types instead of prost's generated ones.
+pub fn serve_child(bulk: bool) -> Result<(), Box<dyn std::error::Error>> {
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()?;
@@ -115,10 +190,18 @@ pub fn serve_child() -> Result<(), Box<dyn std::error::Error>> {
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
         println!("listening {}", listener.local_addr()?);
         let incoming = TcpIncoming::from(listener).with_nodelay(Some(true));
-        tonic::transport::Server::builder()
-            .add_service(CalibratorServer::new(Floor))
-            .serve_with_incoming(incoming)
-            .await?;
+        let mut server = tonic::transport::Server::builder();
+        if bulk {
+            server
+                .add_service(CalibratorServer::new(Floor))
+                .serve_with_incoming(incoming)
+                .await?;
+        } else {
+            server
+                .add_service(GeneratedFloor)
+                .serve_with_incoming(incoming)
+                .await?;
+        }
         Ok(())
     })
 }

@@ -7,7 +7,10 @@
 //! Run: `cargo bench --bench sidecar_compare` (about 6 minutes, plus writing the memory maps once;
 //! `-- --quick` for a short run, `--no-python`, `--no-memory`, `--memory-only`, `--rounds N`,
 //! `--serve-arg ARG` to pass a flag to `candor serve`). Servers, each its own process:
-//! - floor: a bare tonic Calibrator echoing the logits (this binary re-invoked with `--floor`);
+//! - floor: a bare tonic Calibrator echoing the logits with the message types prost generates
+//!   (this binary re-invoked with `--floor`): the floor the targets are measured against;
+//! - bulk floor: the same echo with candor's message types, which move float arrays in bulk
+//!   (`--floor --bulk`): candor's transport without calibration;
 //! - candor: the release `candor serve` with temperature and isotonic maps for K = 10 and 1000;
 //! - python: `bench/python_server.py`, grpcio + numpy, temperature maps.
 //!
@@ -77,7 +80,7 @@ struct Args {
     /// Only these concurrencies (default 1 and 32).
     #[arg(long, value_delimiter = ',', default_values_t = [1, 32])]
     concurrency: Vec<usize>,
-    /// Only these servers: floor, temperature, isotonic, python (default all).
+    /// Only these servers: floor, temperature, isotonic, python, bulk-floor (default all).
     #[arg(long, value_delimiter = ',')]
     servers: Vec<String>,
     /// Extra flag for `candor serve` (repeatable).
@@ -91,6 +94,9 @@ struct Args {
     /// Run as the transport floor server (internal).
     #[arg(long, hide = true)]
     floor: bool,
+    /// With `--floor`: serve candor's message types (internal).
+    #[arg(long, hide = true)]
+    bulk: bool,
     /// Passed by `cargo bench`; ignored.
     #[arg(long, hide = true)]
     bench: bool,
@@ -99,7 +105,7 @@ struct Args {
 fn main() -> Result<(), Failure> {
     let args = Args::parse();
     if args.floor {
-        return floor::serve_child();
+        return floor::serve_child(args.bulk);
     }
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(CLIENT_THREADS)
@@ -183,10 +189,11 @@ fn compare(
         python_files.push(maps::write_compact(&maps::temperature(k)?, &python_dir)?);
     }
     let wanted = |s: usize| {
-        let short = ["floor", "temperature", "isotonic", "python"][s];
+        let short = ["floor", "temperature", "isotonic", "python", "bulk-floor"][s];
         args.servers.is_empty() || args.servers.iter().any(|n| n == short)
     };
-    let floor = servers::floor(pin)?;
+    let floor = servers::floor(pin, false)?;
+    let bulk_floor = servers::floor(pin, true)?;
     let candor = servers::candor(runtime, &map_dir, serve_args, READY_TIMEOUT, pin)?;
     let python = if args.no_python || !wanted(3) {
         None
@@ -194,9 +201,11 @@ fn compare(
         Some(servers::python(&python_files, pin)?)
     };
     eprintln!(
-        "servers: floor pid {} on {}, candor pid {} on {}{}",
+        "servers: floor pid {} on {}, bulk floor pid {} on {}, candor pid {} on {}{}",
         floor.pid,
         floor.addr,
+        bulk_floor.pid,
+        bulk_floor.addr,
         candor.pid,
         candor.addr,
         python.as_ref().map_or(String::new(), |p| format!(
@@ -214,7 +223,7 @@ fn compare(
                 rounds: Vec::new(),
             };
             for r in 0..rounds {
-                let mut row = [None; 4];
+                let mut row = [None; SERVERS.len()];
                 for step in 0..SERVERS.len() {
                     let s = (step + r) % SERVERS.len();
                     if !wanted(s) {
@@ -228,6 +237,7 @@ fn compare(
                             Some(maps::temperature(k)?),
                         ),
                         2 => (&candor, maps::isotonic_model(k), Some(maps::isotonic(k)?)),
+                        4 => (&bulk_floor, maps::temperature_model(k), None),
                         _ => match &python {
                             Some(p) => (p, maps::temperature_model(k), Some(maps::temperature(k)?)),
                             None => continue,

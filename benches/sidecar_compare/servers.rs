@@ -164,11 +164,17 @@ fn candor_listening(line: &str) -> Option<SocketAddr> {
     v["fields"]["addr"].as_str()?.parse().ok()
 }
 
-/// The transport floor: this benchmark binary re-invoked with `--floor`.
-pub fn floor(pin: Pin) -> Result<Server, Failure> {
+/// A transport floor: this benchmark binary re-invoked with `--floor` (prost's generated
+/// messages) or `--floor --bulk` (candor's messages).
+pub fn floor(pin: Pin, bulk: bool) -> Result<Server, Failure> {
+    let mut cmd = command(pin, std::env::current_exe()?);
+    cmd.arg("--floor");
+    if bulk {
+        cmd.arg("--bulk");
+    }
     start(
-        "floor",
-        command(pin, std::env::current_exe()?).arg("--floor"),
+        if bulk { "bulk floor" } else { "floor" },
+        &mut cmd,
         false,
         listening_line,
     )

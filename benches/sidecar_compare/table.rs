@@ -32,19 +32,22 @@ impl Sample {
 }
 
 /// The servers compared, in their order within a round before rotation.
-pub const SERVERS: [&str; 4] = [
+pub const SERVERS: [&str; 5] = [
     "floor",
     "candor temperature",
     "candor isotonic",
     "python temperature",
+    "bulk floor",
 ];
+/// Index of the bulk floor in SERVERS.
+const BULK_FLOOR: usize = 4;
 
 /// Every round's samples for one (K, C): `rounds[r][s]` is server `s` (index into SERVERS) in
 /// round `r`; None when that server was not run.
 pub struct Cell {
     pub classes: usize,
     pub concurrency: usize,
-    pub rounds: Vec<[Option<Sample>; 4]>,
+    pub rounds: Vec<[Option<Sample>; SERVERS.len()]>,
 }
 
 pub fn median(mut v: Vec<f64>) -> f64 {
@@ -129,7 +132,7 @@ pub fn print(cells: &[Cell]) -> (Value, bool) {
     println!("Ratios (median of per-round ratios); targets: req/s ≥ {THROUGHPUT_RATIO_MIN}x floor, CPU ≤ {CPU_RATIO_MAX}x floor,");
     println!("p50 ≤ {P50_RATIO_MAX_AT_C1}x floor at C = 1, req/s ≥ {PYTHON_RATIO_MIN_AT_C32}x Python at C = 32");
     println!(
-        "{:<12} {:>5} {:>3}  {:>14} {:>14} {:>10} {:>14} {:>15}",
+        "{:<12} {:>5} {:>3}  {:>14} {:>14} {:>10} {:>14} {:>15} {:>10}",
         "candor map",
         "K",
         "C",
@@ -137,7 +140,8 @@ pub fn print(cells: &[Cell]) -> (Value, bool) {
         "p50 / floor",
         "p99/floor",
         "CPU / floor",
-        "req/s / Python"
+        "req/s / Python",
+        "CPU / bulk"
     );
     let mut all_met = true;
     let mut out = Vec::new();
@@ -167,8 +171,10 @@ pub fn print(cells: &[Cell]) -> (Value, bool) {
             } else {
                 "-     ".into()
             };
+            // Informational: candor over the same transport without calibration.
+            let cpu_bulk = c.ratio(s, BULK_FLOOR, CPU);
             println!(
-                "{:<12} {:>5} {:>3}  {:>9.3} {:<4} {:>9.3} {:<4} {:>10.3} {:>9.3} {:<4} {:>15}",
+                "{:<12} {:>5} {:>3}  {:>9.3} {:<4} {:>9.3} {:<4} {:>10.3} {:>9.3} {:<4} {:>15} {:>10.3}",
                 map,
                 c.classes,
                 c.concurrency,
@@ -179,11 +185,13 @@ pub fn print(cells: &[Cell]) -> (Value, bool) {
                 p99,
                 cpu,
                 mark(cpu_ok),
-                py_text
+                py_text,
+                cpu_bulk
             );
             out.push(
                 json!({"map": map, "classes": c.classes, "concurrency": c.concurrency,
                 "throughput_ratio": thr, "p50_ratio": p50, "p99_ratio": p99, "cpu_ratio": cpu,
+                "cpu_ratio_to_bulk_floor": if cpu_bulk.is_finite() { json!(cpu_bulk) } else { Value::Null },
                 "python_throughput_ratio": if py.is_finite() { json!(py) } else { Value::Null }}),
             );
         }
