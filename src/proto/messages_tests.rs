@@ -257,3 +257,55 @@ fn a_large_array_crosses_the_write_blocks_intact() {
         logits
     );
 }
+
+#[test]
+fn the_hand_written_messages_have_every_field_the_proto_declares() {
+    // A field added to either message in proto/candor/v1/calibrator.proto must be added to
+    // messages.rs (and twins.rs) too; until then this lists what is missing.
+    use prost_types::field_descriptor_proto::{Label, Type};
+    let set = prost_types::FileDescriptorSet::decode(crate::proto::FILE_DESCRIPTOR_SET).unwrap();
+    let fields = |message: &str| -> Vec<(i32, String, Type, Label)> {
+        let m = set
+            .file
+            .iter()
+            .filter(|f| f.package() == "candor.v1")
+            .flat_map(|f| &f.message_type)
+            .find(|m| m.name() == message)
+            .unwrap();
+        m.field
+            .iter()
+            .map(|f| (f.number(), f.name().to_owned(), f.r#type(), f.label()))
+            .collect()
+    };
+    let (one, many) = (Label::Optional, Label::Repeated);
+    let expect = |v: &[(i32, &str, Type, Label)]| -> Vec<(i32, String, Type, Label)> {
+        v.iter()
+            .map(|(n, s, t, l)| (*n, s.to_string(), *t, *l))
+            .collect()
+    };
+    assert_eq!(
+        fields("CalibrateRequest"),
+        expect(&[
+            (1, "model", Type::String, one),
+            (2, "logits", Type::Float, many),
+            (3, "request_id", Type::String, one),
+            (4, "top_k", Type::Uint32, one),
+            (5, "map_version", Type::String, one),
+        ])
+    );
+    assert_eq!(
+        fields("CalibrateResponse"),
+        expect(&[
+            (1, "probabilities", Type::Float, many),
+            (2, "predicted_class", Type::Uint32, one),
+            (3, "confidence", Type::Float, one),
+            (4, "decision", Type::Enum, one),
+            (5, "threshold", Type::Float, one),
+            (6, "map_version", Type::String, one),
+            (7, "request_id", Type::String, one),
+            (8, "classes", Type::Uint32, many),
+            (9, "route", Type::Enum, one),
+            (10, "audit", Type::Bool, one),
+        ])
+    );
+}
