@@ -1,7 +1,7 @@
 //! The writer thread: the table of recent decisions (for joining outcomes) and the journal.
 
 use super::file::{DecisionLine, JournalFiles, Record};
-use crate::live::{LabelledDecision, LiveQuality, Tracker, WindowSizes, WindowSpec};
+use crate::live::{LabelledDecision, LiveQuality, Tracker, WindowSizes, WindowSlot, WindowSpec};
 use arc_swap::ArcSwap;
 use std::collections::{HashMap, VecDeque};
 use std::path::PathBuf;
@@ -158,7 +158,8 @@ pub struct Decided<'a> {
 /// the logits only when a journal keeps them.
 struct Pending {
     at_ms: u64,
-    request_id: String,
+    /// None for a request without an id (nothing to join an outcome to).
+    request_id: Option<Arc<str>>,
     map: Arc<MapKey>,
     predicted: u32,
     confidence: f32,
@@ -236,6 +237,7 @@ impl DecisionLog {
             rx,
             files,
             tracker: Tracker::new(options.windows),
+            last_window: None,
             options,
             stats: stats.clone(),
             recent: HashMap::new(),
@@ -286,7 +288,7 @@ impl DecisionLog {
     pub fn decision(&self, d: Decided<'_>) {
         let p = Pending {
             at_ms: now_ms(),
-            request_id: d.request_id.to_owned(),
+            request_id: (!d.request_id.is_empty()).then(|| Arc::from(d.request_id)),
             map: d.map.clone(),
             predicted: d.predicted,
             confidence: d.confidence,
@@ -341,6 +343,9 @@ struct Writer {
     /// Request ids in arrival order, for forgetting the oldest.
     order: VecDeque<(u64, Arc<str>)>,
     tracker: Tracker,
+    /// The live-quality window of the map that answered the latest decision: consecutive
+    /// decisions of one map skip the lookup by model and version.
+    last_window: Option<(Arc<MapKey>, WindowSlot)>,
     spec: SpecLookup,
     live: Arc<ArcSwap<Vec<LiveQuality>>>,
 }
@@ -400,20 +405,24 @@ impl Writer {
                 let _ = done.send(());
             }
             Entry::Decision(p) => {
-                let audit_rate = self.tracker.decision(
-                    &p.map.model,
-                    &p.map.map_version,
-                    p.confidence,
-                    p.accepted,
-                    &*self.spec,
-                );
+                let slot = match &self.last_window {
+                    Some((key, slot)) if Arc::ptr_eq(key, &p.map) => *slot,
+                    _ => {
+                        let slot = self
+                            .tracker
+                            .slot(&p.map.model, &p.map.map_version, &*self.spec);
+                        self.last_window = Some((p.map.clone(), slot));
+                        slot
+                    }
+                };
+                let audit_rate = self.tracker.decision_in(slot, p.confidence, p.accepted);
                 if self.files.is_some() {
                     push_line(
                         buf,
                         &DecisionLine {
                             kind: "decision",
                             at_ms: p.at_ms,
-                            request_id: &p.request_id,
+                            request_id: p.request_id.as_deref().unwrap_or(""),
                             model: &p.map.model,
                             map_version: &p.map.map_version,
                             predicted: p.predicted,
@@ -426,8 +435,7 @@ impl Writer {
                     );
                     *lines += 1;
                 }
-                if !p.request_id.is_empty() {
-                    let id: Arc<str> = Arc::from(p.request_id);
+                if let Some(id) = p.request_id {
                     self.order.push_back((p.at_ms, id.clone()));
                     self.recent.insert(
                         id,

@@ -304,39 +304,43 @@ impl Window {
 #[derive(Debug)]
 pub struct Tracker {
     sizes: WindowSizes,
-    windows: BTreeMap<String, BTreeMap<String, Window>>,
+    /// Window index by model, then version (sorted, for the report).
+    index: BTreeMap<String, BTreeMap<String, usize>>,
+    /// Every window ever opened; none is removed, so an index stays valid.
+    windows: Vec<Window>,
 }
+
+/// A window of a [`Tracker`], found once by (model, version) and then used without a lookup.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct WindowSlot(usize);
 
 impl Tracker {
     /// No windows yet.
     pub fn new(sizes: WindowSizes) -> Self {
         Tracker {
             sizes,
-            windows: BTreeMap::new(),
+            index: BTreeMap::new(),
+            windows: Vec::new(),
         }
     }
 
-    fn window(
+    /// The window of (model, version), opened (with `spec`) the first time it is asked for.
+    pub fn slot(
         &mut self,
         model: &str,
         version: &str,
         spec: &dyn Fn(&str, &str) -> WindowSpec,
-    ) -> &mut Window {
-        // Two lookups in the common case (the window exists): this runs once per decision.
-        let known = self
-            .windows
-            .get(model)
-            .is_some_and(|v| v.contains_key(version));
-        if !known {
-            self.windows
-                .entry(model.to_owned())
-                .or_default()
-                .insert(version.to_owned(), Window::new(spec(model, version)));
+    ) -> WindowSlot {
+        if let Some(&i) = self.index.get(model).and_then(|v| v.get(version)) {
+            return WindowSlot(i);
         }
-        self.windows
-            .get_mut(model)
-            .and_then(|v| v.get_mut(version))
-            .unwrap_or_else(|| unreachable!("inserted above"))
+        let i = self.windows.len();
+        self.windows.push(Window::new(spec(model, version)));
+        self.index
+            .entry(model.to_owned())
+            .or_default()
+            .insert(version.to_owned(), i);
+        WindowSlot(i)
     }
 
     /// Counts one decision; `spec` describes the map the first time a (model, version) is seen.
@@ -349,8 +353,15 @@ impl Tracker {
         accepted: bool,
         spec: &dyn Fn(&str, &str) -> WindowSpec,
     ) -> f64 {
+        let slot = self.slot(model, version, spec);
+        self.decision_in(slot, confidence, accepted)
+    }
+
+    /// Counts one decision in a window found before with [`Tracker::slot`]; returns the audit
+    /// rate π in force there.
+    pub fn decision_in(&mut self, slot: WindowSlot, confidence: f32, accepted: bool) -> f64 {
         let cap = self.sizes.decisions;
-        let w = self.window(model, version, spec);
+        let w = &mut self.windows[slot.0];
         w.push_decision(confidence, accepted, cap);
         w.spec.audit_rate
     }
@@ -364,14 +375,19 @@ impl Tracker {
         spec: &dyn Fn(&str, &str) -> WindowSpec,
     ) {
         let cap = self.sizes.labels;
-        self.window(model, version, spec).push_label(label, cap);
+        let slot = self.slot(model, version, spec);
+        self.windows[slot.0].push_label(label, cap);
     }
 
     /// The live quality of every window, by model then version.
     pub fn report(&self) -> Vec<LiveQuality> {
-        self.windows
+        self.index
             .iter()
-            .flat_map(|(m, versions)| versions.iter().map(move |(v, w)| w.quality(m, v)))
+            .flat_map(|(m, versions)| {
+                versions
+                    .iter()
+                    .map(move |(v, &i)| self.windows[i].quality(m, v))
+            })
             .collect()
     }
 }

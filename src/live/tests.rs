@@ -130,3 +130,28 @@ fn a_map_without_reference_or_target_is_reported_as_such() {
     );
     assert_eq!(q.confidence_level, DEFAULT_CONFIDENCE_LEVEL);
 }
+
+#[test]
+fn a_slot_names_one_window_for_good_and_the_report_keeps_model_then_version_order() {
+    let mut t = Tracker::new(WindowSizes::default());
+    let opened = std::cell::Cell::new(0);
+    let s = |_: &str, _: &str| {
+        opened.set(opened.get() + 1);
+        WindowSpec::default()
+    };
+    let b2 = t.slot("b", "v2", &s);
+    let a1 = t.slot("a", "v1", &s);
+    assert_eq!(t.slot("b", "v2", &s), b2);
+    assert_ne!(a1, b2);
+    assert_eq!(opened.get(), 2, "a window is opened once");
+    t.decision_in(b2, 0.9, true);
+    t.decision_in(b2, 0.4, false);
+    t.decision("b", "v2", 0.8, true, &s);
+    t.decision("a", "v1", 0.8, true, &s);
+    let r = t.report();
+    let seen: Vec<(&str, &str, u64)> = r
+        .iter()
+        .map(|q| (q.model.as_str(), q.map_version.as_str(), q.decisions_total))
+        .collect();
+    assert_eq!(seen, [("a", "v1", 1), ("b", "v2", 3)]);
+}
