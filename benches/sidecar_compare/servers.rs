@@ -63,6 +63,9 @@ pub struct Server {
     pub pid: u32,
     child: Child,
     tail: Arc<Mutex<VecDeque<String>>>,
+    /// The first line logged at level ERROR (`candor serve --log-format json`), kept even after
+    /// it leaves the tail.
+    first_error: Arc<Mutex<Option<String>>>,
 }
 
 impl Drop for Server {
@@ -103,6 +106,7 @@ fn start(
         .spawn()
         .map_err(|e| format!("{name}: cannot start {command:?}: {e}"))?;
     let tail = Arc::new(Mutex::new(VecDeque::new()));
+    let first_error = Arc::new(Mutex::new(None));
     let (tx, rx) = mpsc::channel();
     let stderr: Box<dyn Read + Send> = Box::new(child.stderr.take().ok_or("no stderr pipe")?);
     let (watched, other): (Box<dyn Read + Send>, Option<Box<dyn Read + Send>>) = if on_stderr {
@@ -114,12 +118,17 @@ fn start(
     for (reader, sender) in [(Some(watched), Some(tx)), (other, None)] {
         let Some(reader) = reader else { continue };
         let tail = tail.clone();
+        let first_error = first_error.clone();
         thread::spawn(move || {
             for line in BufReader::new(reader).lines().map_while(Result::ok) {
                 if let Some(addr) = announce(&line) {
                     if let Some(s) = &sender {
                         let _ = s.send(addr);
                     }
+                }
+                if line.contains(r#""level":"ERROR""#) {
+                    let mut e = first_error.lock().unwrap_or_else(|e| e.into_inner());
+                    e.get_or_insert_with(|| line.clone());
                 }
                 let mut t = tail.lock().unwrap_or_else(|e| e.into_inner());
                 if t.len() == TAIL_LINES {
@@ -136,6 +145,7 @@ fn start(
         pid,
         child,
         tail,
+        first_error,
     };
     match rx.recv_timeout(ANNOUNCE_TIMEOUT) {
         Ok(addr) => {
@@ -207,11 +217,19 @@ pub fn candor(
         true,
         candor_listening,
     )?;
-    let ready =
-        runtime.block_on(async { tokio::time::timeout(ready_timeout, serving(server.addr)).await });
+    // A refused map keeps the sidecar from ever becoming ready: stop waiting at once.
+    let first_error = server.first_error.clone();
+    let ready = runtime.block_on(async {
+        tokio::select! {
+            r = tokio::time::timeout(ready_timeout, serving(server.addr)) => r,
+            line = first_logged(first_error) => Ok(Err(format!(
+                "candor logged an error while loading, so it will not become ready: {line}"
+            ).into())),
+        }
+    });
     match ready {
         Ok(Ok(())) => Ok(server),
-        Ok(Err(e)) => Err(format!("candor health watch failed: {e}\n{}", server.tail()).into()),
+        Ok(Err(e)) => Err(format!("candor did not become ready: {e}\n{}", server.tail()).into()),
         Err(_) => Err(format!(
             "candor not SERVING within {ready_timeout:?}; its output:\n{}",
             server.tail()
@@ -221,6 +239,21 @@ pub fn candor(
 }
 
 /// Completes when the server's overall health becomes SERVING.
+/// Resolves with the first ERROR line once one has been logged (checked every 100 ms).
+async fn first_logged(first_error: Arc<Mutex<Option<String>>>) -> String {
+    let mut tick = tokio::time::interval(Duration::from_millis(100));
+    loop {
+        tick.tick().await;
+        let seen = first_error
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .clone();
+        if let Some(line) = seen {
+            return line;
+        }
+    }
+}
+
 async fn serving(addr: SocketAddr) -> Result<(), Failure> {
     let channel = tonic::transport::Endpoint::from_shared(format!("http://{addr}"))?
         .connect()
