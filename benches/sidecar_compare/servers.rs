@@ -238,7 +238,6 @@ pub fn candor(
     }
 }
 
-/// Completes when the server's overall health becomes SERVING.
 /// Resolves with the first ERROR line once one has been logged (checked every 100 ms).
 async fn first_logged(first_error: Arc<Mutex<Option<String>>>) -> String {
     let mut tick = tokio::time::interval(Duration::from_millis(100));
@@ -254,6 +253,7 @@ async fn first_logged(first_error: Arc<Mutex<Option<String>>>) -> String {
     }
 }
 
+/// Completes when the server's overall health becomes SERVING.
 async fn serving(addr: SocketAddr) -> Result<(), Failure> {
     let channel = tonic::transport::Endpoint::from_shared(format!("http://{addr}"))?
         .connect()

@@ -417,13 +417,13 @@ impl Rollout {
         self.publishes_total += 1;
     }
 
-    /// True when the maps are ready to serve: at least one model is active, every model has an
-    /// active version, and no refused file belongs to a model that is not served.
     /// Map files parsed by scans so far.
     pub(super) fn files_read(&self) -> u64 {
         self.files_read
     }
 
+    /// True when the maps are ready to serve: at least one model is active, every model has an
+    /// active version, and no refused file belongs to a model that is not served.
     pub(super) fn ready(&self) -> bool {
         !self.models.is_empty()
             && self.models.values().all(|m| m.active.is_some())
