@@ -9,16 +9,19 @@ use crate::proto::v1::calibrator_server::CalibratorServer;
 use crate::proto::v1::map_control_server::MapControlServer;
 use crate::registry::Registry;
 use crate::service::{
-    check_token, deadline_check, AdminToken, CalibratorService, Limits, MapControlService,
+    check_token, AdminToken, CalibratorService, GatewayLayer, Limits, MapControlService,
     MAX_PUSH_BYTES,
 };
 use crate::telemetry::RpcStats;
 use crate::tls::TlsReloader;
+use std::convert::Infallible;
 use std::future::Future;
 use std::pin::Pin;
 use std::sync::Arc;
 use std::time::Duration;
 use tokio::net::TcpListener;
+use tonic::codegen::http;
+use tonic::service::Routes;
 use tonic::transport::server::TcpIncoming;
 use tonic_health::ServingStatus;
 
@@ -77,12 +80,23 @@ fn incoming(listener: TcpListener) -> TcpIncoming {
 type Serving = Pin<Box<dyn Future<Output = Result<(), tonic::transport::Error>> + Send>>;
 
 /// Serves `router` on `listener`, over TLS when `tls` is given, until `stop` completes.
-fn serve_on(
-    router: tonic::transport::server::Router,
+fn serve_on<L>(
+    router: tonic::transport::server::Router<L>,
     listener: TcpListener,
     tls: Option<TlsReloader>,
     stop: impl Future<Output = ()> + Send + 'static,
-) -> Serving {
+) -> Serving
+where
+    L: tower_layer::Layer<Routes> + Send + 'static,
+    L::Service: tower_service::Service<
+            http::Request<tonic::body::Body>,
+            Response = http::Response<tonic::body::Body>,
+            Error = Infallible,
+        > + Clone
+        + Send
+        + 'static,
+    <L::Service as tower_service::Service<http::Request<tonic::body::Body>>>::Future: Send,
+{
     match tls {
         None => Box::pin(router.serve_with_incoming_shutdown(incoming(listener), stop)),
         Some(t) => {
@@ -144,18 +158,17 @@ pub async fn run(
         let _ = drain_tx.send(());
     };
 
+    let calibrator = CalibratorServer::new(
+        CalibratorService::new(registry, draining, options.stats.clone())
+            .with_journal(options.journal.clone())
+            .with_limits(options.limits),
+    )
+    .max_decoding_message_size(options.limits.max_message_bytes);
+    // The calibrator is reached through the gateway, health and reflection through the router.
     let router = tonic::transport::Server::builder()
+        .layer(GatewayLayer::new(calibrator, options.stats.clone()))
         .add_service(health)
-        .add_service(reflection)
-        .add_service(tonic::service::interceptor::InterceptedService::new(
-            CalibratorServer::new(
-                CalibratorService::new(registry, draining, options.stats.clone())
-                    .with_journal(options.journal.clone())
-                    .with_limits(options.limits),
-            )
-            .max_decoding_message_size(options.limits.max_message_bytes),
-            deadline_check(options.stats.clone()),
-        ));
+        .add_service(reflection);
     let server = serve_on(router, listener, options.tls.clone(), stop);
     tokio::pin!(server);
     let grace = options.grace_period;

@@ -194,13 +194,18 @@ async fn beyond_the_in_flight_bound_requests_are_shed_at_once_and_counted() {
 /// Sends one Calibrate with `grpc-timeout: timeout` over a bare HTTP/2 connection and returns
 /// the server's `grpc-status` (from the headers of a trailers-only answer, else the trailers).
 async fn grpc_status_of_calibrate(addr: std::net::SocketAddr, timeout: &str) -> i32 {
+    grpc_status_of(addr, "/candor.v1.Calibrator/Calibrate", timeout).await
+}
+
+/// [`grpc_status_of_calibrate`] for a call to `path`.
+async fn grpc_status_of(addr: std::net::SocketAddr, path: &str, timeout: &str) -> i32 {
     use prost::Message as _;
     use tonic::codegen::http;
     let tcp = tokio::net::TcpStream::connect(addr).await.unwrap();
     let (client, connection) = h2::client::handshake(tcp).await.unwrap();
     tokio::spawn(connection);
     let mut client = client.ready().await.unwrap();
-    let req = http::Request::post(format!("http://{addr}/candor.v1.Calibrator/Calibrate"))
+    let req = http::Request::post(format!("http://{addr}{path}"))
         .header("content-type", "application/grpc")
         .header("te", "trailers")
         .header("grpc-timeout", timeout)
@@ -259,4 +264,46 @@ async fn a_passed_deadline_gets_deadline_exceeded_and_streams_end_at_the_deadlin
     assert!(started.elapsed() >= STREAM_DEADLINE);
     assert_eq!(s.stats.errors(Code::DeadlineExceeded), 2);
     drop(tx);
+}
+
+#[tokio::test]
+async fn every_path_reaches_its_service_and_a_passed_deadline_is_refused_only_on_the_data_plane() {
+    let s = start(Limits::default()).await;
+    let status = |path: &'static str, timeout: &'static str| grpc_status_of(s.addr, path, timeout);
+    // The calibrator's methods, and a method it does not have.
+    assert_eq!(
+        status("/candor.v1.Calibrator/Calibrate", "5S").await,
+        Code::Ok as i32
+    );
+    assert_eq!(
+        status("/candor.v1.Calibrator/NoSuchMethod", "5S").await,
+        Code::Unimplemented as i32
+    );
+    // Health checking answers through the router: the Calibrate row read as a health request
+    // names the service "triage" (field 1), which health checking does not know.
+    assert_eq!(
+        status("/grpc.health.v1.Health/Check", "5S").await,
+        Code::NotFound as i32
+    );
+    // A service nobody serves, and one whose name only starts like the calibrator's.
+    for path in ["/no.such.Service/Call", "/candor.v1.CalibratorX/Calibrate"] {
+        assert_eq!(
+            status(path, "5S").await,
+            Code::Unimplemented as i32,
+            "{path}"
+        );
+    }
+    // A passed deadline is refused, and counted, on the data plane only.
+    assert_eq!(
+        status("/candor.v1.Calibrator/NoSuchMethod", "0n").await,
+        Code::DeadlineExceeded as i32
+    );
+    assert_eq!(s.stats.errors(Code::DeadlineExceeded), 1);
+    // Elsewhere the transport's own timer answers (CANCELLED) unless the service is quicker.
+    let health = status("/grpc.health.v1.Health/Check", "0n").await;
+    assert!(
+        [Code::Cancelled as i32, Code::NotFound as i32].contains(&health),
+        "{health}"
+    );
+    assert_eq!(s.stats.errors(Code::DeadlineExceeded), 1);
 }

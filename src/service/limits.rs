@@ -2,13 +2,14 @@
 //! client's deadline.
 //!
 //! The in-flight bound sheds load instead of queueing: a request that finds every slot taken is
-//! answered RESOURCE_EXHAUSTED at once. Taking a slot is one `Semaphore::try_acquire_owned`
-//! (a compare-and-swap on the permit count, no lock, no waiting); a stream holds its slot until
-//! it ends or the client goes away.
+//! answered RESOURCE_EXHAUSTED at once. Taking a slot is a compare-and-swap on a shared count
+//! and giving it back one atomic subtraction (no lock, no waiting); a unary call borrows its slot,
+//! a stream owns one until it ends or the client goes away.
 
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Arc;
 use std::time::Duration;
-use tokio::sync::{OwnedSemaphorePermit, Semaphore};
+use tonic::codegen::http;
 
 /// Default largest encoded request message, bytes (gRPC's customary 4 MiB).
 pub const DEFAULT_MAX_MESSAGE_BYTES: usize = 4 * 1024 * 1024;
@@ -45,53 +46,101 @@ impl Default for Limits {
 /// Slots for requests in flight; cloning shares them.
 #[derive(Debug, Clone)]
 pub struct InFlight {
-    /// None: no bound.
-    slots: Option<Arc<Semaphore>>,
+    /// Slots taken.
+    taken: Arc<AtomicUsize>,
     /// The bound (0: none).
     max: usize,
+}
+
+/// A slot borrowed for one call; given back when dropped.
+#[derive(Debug)]
+#[must_use = "the slot is given back as soon as it is dropped"]
+pub struct Slot<'a>(Option<&'a AtomicUsize>);
+
+/// A slot owned by a stream; given back when dropped.
+#[derive(Debug)]
+#[must_use = "the slot is given back as soon as it is dropped"]
+pub struct OwnedSlot(Option<Arc<AtomicUsize>>);
+
+impl Drop for Slot<'_> {
+    fn drop(&mut self) {
+        if let Some(taken) = self.0 {
+            taken.fetch_sub(1, Ordering::Release);
+        }
+    }
+}
+
+impl Drop for OwnedSlot {
+    fn drop(&mut self) {
+        if let Some(taken) = &self.0 {
+            taken.fetch_sub(1, Ordering::Release);
+        }
+    }
 }
 
 impl InFlight {
     /// At most `max` requests at once; 0 means no bound.
     pub fn new(max: usize) -> Self {
         InFlight {
-            slots: (max > 0).then(|| Arc::new(Semaphore::new(max.min(Semaphore::MAX_PERMITS)))),
+            taken: Arc::new(AtomicUsize::new(0)),
             max,
         }
     }
 
-    /// Takes a slot without waiting: `Err(limit)` when every slot is taken.
-    ///
-    /// # Errors
-    /// The bound, when it is reached.
+    /// Takes a slot if one is free; false when all `max` are taken.
     #[inline]
-    pub fn try_enter(&self) -> Result<Option<OwnedSemaphorePermit>, usize> {
-        match &self.slots {
-            None => Ok(None),
-            Some(s) => s
-                .clone()
-                .try_acquire_owned()
-                .map(Some)
-                .map_err(|_| self.max),
+    fn take(&self) -> bool {
+        let mut now = self.taken.load(Ordering::Relaxed);
+        loop {
+            if now >= self.max {
+                return false;
+            }
+            match self.taken.compare_exchange_weak(
+                now,
+                now + 1,
+                Ordering::Acquire,
+                Ordering::Relaxed,
+            ) {
+                Ok(_) => return true,
+                Err(seen) => now = seen,
+            }
         }
     }
-}
 
-/// An interceptor answering DEADLINE_EXCEEDED, counted in `stats`, to a request whose client
-/// deadline has already passed (`grpc-timeout` of zero), before its message is read.
-///
-/// It runs when the call starts, inside the transport's own deadline timer: that timer answers
-/// CANCELLED ("Timeout expired") when it fires while a handler is still waiting, e.g. for the
-/// request body, so a passed deadline must be refused before any waiting.
-pub fn deadline_check(
-    stats: Arc<crate::telemetry::RpcStats>,
-) -> impl FnMut(tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> + Clone {
-    move |req: tonic::Request<()>| {
-        if client_timeout(req.metadata()) == Some(Duration::ZERO) {
-            stats.error(tonic::Code::DeadlineExceeded);
-            return Err(super::status::deadline_passed(Duration::ZERO));
+    /// Takes a slot for the length of one call, without waiting.
+    ///
+    /// # Errors
+    /// The bound, when every slot is taken.
+    #[inline]
+    pub fn try_enter(&self) -> Result<Slot<'_>, usize> {
+        if self.max == 0 {
+            return Ok(Slot(None));
         }
-        Ok(req)
+        if self.take() {
+            Ok(Slot(Some(&self.taken)))
+        } else {
+            Err(self.max)
+        }
+    }
+
+    /// Takes a slot a stream keeps until it is dropped, without waiting.
+    ///
+    /// # Errors
+    /// The bound, when every slot is taken.
+    pub fn try_enter_owned(&self) -> Result<OwnedSlot, usize> {
+        if self.max == 0 {
+            return Ok(OwnedSlot(None));
+        }
+        if self.take() {
+            Ok(OwnedSlot(Some(self.taken.clone())))
+        } else {
+            Err(self.max)
+        }
+    }
+
+    /// Slots taken now.
+    pub fn taken(&self) -> usize {
+        self.taken.load(Ordering::Relaxed)
     }
 }
 
@@ -99,10 +148,13 @@ pub fn deadline_check(
 /// integer as ASCII string of at most 8 digits}").
 const GRPC_TIMEOUT_MAX_DIGITS: usize = 8;
 
-/// The client's deadline from the `grpc-timeout` metadata, relative to now; None when absent
+/// The header carrying the client's deadline (gRPC over HTTP/2).
+static GRPC_TIMEOUT: http::HeaderName = http::HeaderName::from_static("grpc-timeout");
+
+/// The client's deadline from the `grpc-timeout` header, relative to now; None when absent
 /// or malformed (a malformed header is ignored, as the transport ignores it).
-pub fn client_timeout(metadata: &tonic::metadata::MetadataMap) -> Option<Duration> {
-    let text = metadata.get("grpc-timeout")?.to_str().ok()?;
+pub fn client_timeout(headers: &http::HeaderMap) -> Option<Duration> {
+    let text = headers.get(&GRPC_TIMEOUT)?.to_str().ok()?;
     let digits = text.get(..text.len().checked_sub(1)?)?;
     if digits.is_empty()
         || digits.len() > GRPC_TIMEOUT_MAX_DIGITS
@@ -126,8 +178,8 @@ pub fn client_timeout(metadata: &tonic::metadata::MetadataMap) -> Option<Duratio
 mod tests {
     use super::*;
 
-    fn with(v: &str) -> tonic::metadata::MetadataMap {
-        let mut m = tonic::metadata::MetadataMap::new();
+    fn with(v: &str) -> http::HeaderMap {
+        let mut m = http::HeaderMap::new();
         m.insert("grpc-timeout", v.parse().unwrap());
         m
     }
@@ -144,17 +196,52 @@ mod tests {
         assert_eq!(client_timeout(&with("123456789S")), None);
         assert_eq!(client_timeout(&with("5x")), None);
         assert_eq!(client_timeout(&with("S")), None);
-        assert_eq!(client_timeout(&tonic::metadata::MetadataMap::new()), None);
+        assert_eq!(client_timeout(&http::HeaderMap::new()), None);
     }
 
     #[test]
     fn slots_are_shed_not_queued() {
         let f = InFlight::new(2);
         let a = f.try_enter().unwrap();
-        let _b = f.try_enter().unwrap();
-        assert!(f.try_enter().is_err());
+        let b = f.try_enter_owned().unwrap();
+        assert_eq!(f.try_enter().unwrap_err(), 2);
+        assert_eq!(f.try_enter_owned().unwrap_err(), 2);
+        assert_eq!(f.taken(), 2);
         drop(a);
-        assert!(f.try_enter().is_ok());
-        assert!(InFlight::new(0).try_enter().unwrap().is_none());
+        assert_eq!(f.taken(), 1);
+        let c = f.try_enter().unwrap();
+        assert!(f.try_enter().is_err());
+        drop((b, c));
+        assert_eq!(f.taken(), 0);
+        // A clone shares the slots.
+        let g = f.clone();
+        let _d = g.try_enter_owned().unwrap();
+        let _e = f.try_enter().unwrap();
+        assert!(g.try_enter().is_err());
+        // No bound: every call enters, nothing is counted.
+        let free = InFlight::new(0);
+        let many: Vec<_> = (0..10).map(|_| free.try_enter().unwrap()).collect();
+        assert_eq!(free.taken(), 0);
+        drop(many);
+    }
+
+    #[test]
+    fn slots_taken_from_many_threads_never_exceed_the_bound() {
+        let f = InFlight::new(3);
+        let peak = AtomicUsize::new(0);
+        std::thread::scope(|s| {
+            for _ in 0..4 {
+                s.spawn(|| {
+                    for _ in 0..20_000 {
+                        if let Ok(slot) = f.try_enter() {
+                            peak.fetch_max(f.taken(), Ordering::Relaxed);
+                            drop(slot);
+                        }
+                    }
+                });
+            }
+        });
+        assert!(peak.load(Ordering::Relaxed) <= 3);
+        assert_eq!(f.taken(), 0);
     }
 }

@@ -2,13 +2,15 @@
 //! (`candor.v1.MapControl`).
 
 mod admin;
+mod gateway;
 mod limits;
 mod row;
 mod status;
 
 pub use admin::{check_token, model_status, AdminToken, MapControlService, MAX_PUSH_BYTES};
+pub use gateway::{Gateway, GatewayFuture, GatewayLayer};
 pub use limits::{
-    client_timeout, deadline_check, InFlight, Limits, DEFAULT_MAX_CLASSES,
+    client_timeout, InFlight, Limits, OwnedSlot, Slot, DEFAULT_MAX_CLASSES,
     DEFAULT_MAX_CONCURRENT_REQUESTS, DEFAULT_MAX_MESSAGE_BYTES,
 };
 pub use row::{answer, answer_by, RowError};
@@ -29,7 +31,7 @@ use std::sync::Arc;
 use std::task::{Context, Poll};
 use std::time::Duration;
 use std::time::Instant;
-use tokio::sync::{watch, OwnedSemaphorePermit};
+use tokio::sync::watch;
 use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
 
@@ -78,22 +80,32 @@ impl CalibratorService {
         self
     }
 
-    /// Admits a request: refuses it with RESOURCE_EXHAUSTED when every in-flight slot is taken,
-    /// counting the refusal. Returns the slot (held until dropped) and the client's timeout. (A
-    /// deadline that has already passed is refused earlier, by [`deadline_check`].)
+    /// Admits a call: refuses it with RESOURCE_EXHAUSTED when every in-flight slot is taken,
+    /// counting the refusal. Returns the slot, held until dropped. (A deadline that has already
+    /// passed is refused earlier, by the [`Gateway`].)
     #[inline]
-    fn admit<T>(
+    fn admit(&self) -> Result<Slot<'_>, Status> {
+        self.in_flight
+            .try_enter()
+            .map_err(|max| self.overloaded(max))
+    }
+
+    /// [`CalibratorService::admit`] for a stream, which owns its slot; also returns the
+    /// client's timeout.
+    fn admit_stream<T>(
         &self,
         request: &Request<T>,
-    ) -> Result<(Option<OwnedSemaphorePermit>, Option<Duration>), Status> {
-        let timeout = client_timeout(request.metadata());
-        match self.in_flight.try_enter() {
-            Ok(slot) => Ok((slot, timeout)),
-            Err(max) => {
-                self.stats.error(tonic::Code::ResourceExhausted);
-                Err(status::overloaded(max))
-            }
-        }
+    ) -> Result<(OwnedSlot, Option<Duration>), Status> {
+        let slot = self
+            .in_flight
+            .try_enter_owned()
+            .map_err(|max| self.overloaded(max))?;
+        Ok((slot, client_timeout(request.metadata().as_ref())))
+    }
+
+    fn overloaded(&self, max: usize) -> Status {
+        self.stats.error(tonic::Code::ResourceExhausted);
+        status::overloaded(max)
     }
 
     /// Hands every answered request to `journal` and takes outcomes back through it.
@@ -131,7 +143,7 @@ struct Draining<S> {
     stats: Arc<RpcStats>,
     /// The in-flight slot, released when the stream ends or the client goes away (the
     /// transport drops the response stream then).
-    _slot: Option<OwnedSemaphorePermit>,
+    _slot: OwnedSlot,
     done: bool,
 }
 
@@ -239,7 +251,7 @@ impl Calibrator for CalibratorService {
         &self,
         request: Request<CalibrateRequest>,
     ) -> Result<Response<CalibrateResponse>, Status> {
-        let _slot = self.admit(&request)?;
+        let _slot = self.admit()?;
         let mut req = request.into_inner();
         let max = self.limits.max_classes;
         let resp = self
@@ -252,7 +264,7 @@ impl Calibrator for CalibratorService {
         &self,
         request: Request<CalibrateBatchRequest>,
     ) -> Result<Response<CalibrateBatchResponse>, Status> {
-        let _slot = self.admit(&request)?;
+        let _slot = self.admit()?;
         let rows = request.into_inner().rows;
         if rows.len() > self.limits.max_batch {
             self.stats.error(tonic::Code::InvalidArgument);
@@ -275,7 +287,7 @@ impl Calibrator for CalibratorService {
         &self,
         request: Request<Streaming<CalibrateRequest>>,
     ) -> Result<Response<Self::CalibrateStreamStream>, Status> {
-        let (slot, timeout) = self.admit(&request)?;
+        let (slot, timeout) = self.admit_stream(&request)?;
         let registry = self.registry.clone();
         let stats = self.stats.clone();
         let journal = self.journal.clone();
@@ -312,8 +324,8 @@ impl Calibrator for CalibratorService {
                 "this sidecar keeps no decision log, so outcomes cannot be joined",
             ));
         }
-        let (_slot, timeout) = self.admit(&request)?;
-        let answered = match timeout {
+        let _slot = self.admit()?;
+        let answered = match client_timeout(request.metadata().as_ref()) {
             None => self.outcome(request.get_ref()).await,
             Some(t) => match tokio::time::timeout(t, self.outcome(request.get_ref())).await {
                 Ok(r) => r,
@@ -345,7 +357,7 @@ impl Calibrator for CalibratorService {
                 "this sidecar keeps no decision log, so outcomes cannot be joined",
             ));
         }
-        let (slot, _) = self.admit(&request)?;
+        let (slot, _) = self.admit_stream(&request)?;
         let me = self.clone();
         let mut inbound = request.into_inner();
         let out = async_stream_of(move |tx| async move {
