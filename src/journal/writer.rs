@@ -152,12 +152,15 @@ pub struct Decided<'a> {
     /// The raw logits (moved into the record when the log keeps them, else dropped; see
     /// [`DecisionLog::keeps_logits`]).
     pub logits: Vec<f32>,
+    /// When the sidecar began answering (the instant its latency is measured from). The writer
+    /// turns it into wall-clock time, so the request path reads no second clock.
+    pub at: Instant,
 }
 
 /// A decision on its way to the writer: one owned string (the request id), a shared key, and
 /// the logits only when a journal keeps them.
 struct Pending {
-    at_ms: u64,
+    at: Instant,
     /// None for a request without an id (nothing to join an outcome to).
     request_id: Option<Arc<str>>,
     map: Arc<MapKey>,
@@ -238,6 +241,7 @@ impl DecisionLog {
             files,
             tracker: Tracker::new(options.windows),
             last_window: None,
+            clock: (now_ms(), Instant::now()),
             options,
             stats: stats.clone(),
             recent: HashMap::new(),
@@ -287,7 +291,7 @@ impl DecisionLog {
     #[inline]
     pub fn decision(&self, d: Decided<'_>) {
         let p = Pending {
-            at_ms: now_ms(),
+            at: d.at,
             request_id: (!d.request_id.is_empty()).then(|| Arc::from(d.request_id)),
             map: d.map.clone(),
             predicted: d.predicted,
@@ -346,6 +350,8 @@ struct Writer {
     /// The live-quality window of the map that answered the latest decision: consecutive
     /// decisions of one map skip the lookup by model and version.
     last_window: Option<(Arc<MapKey>, WindowSlot)>,
+    /// Wall-clock milliseconds and the monotonic instant, read together once per batch.
+    clock: (u64, Instant),
     spec: SpecLookup,
     live: Arc<ArcSwap<Vec<LiveQuality>>>,
 }
@@ -377,6 +383,7 @@ impl Writer {
                 Err(TryRecvError::Disconnected) => return,
             };
             buf.clear();
+            self.clock = (now_ms(), Instant::now());
             let mut lines = 0u64;
             let mut replies: Vec<Reply> = Vec::new();
             let mut next = Some(first);
@@ -405,6 +412,11 @@ impl Writer {
                 let _ = done.send(());
             }
             Entry::Decision(p) => {
+                // Wall-clock milliseconds of `p.at`: the batch's clock reading less the time since.
+                let at_ms =
+                    self.clock.0.saturating_sub(
+                        self.clock.1.saturating_duration_since(p.at).as_millis() as u64,
+                    );
                 let slot = match &self.last_window {
                     Some((key, slot)) if Arc::ptr_eq(key, &p.map) => *slot,
                     _ => {
@@ -421,7 +433,7 @@ impl Writer {
                         buf,
                         &DecisionLine {
                             kind: "decision",
-                            at_ms: p.at_ms,
+                            at_ms,
                             request_id: p.request_id.as_deref().unwrap_or(""),
                             model: &p.map.model,
                             map_version: &p.map.map_version,
@@ -436,11 +448,11 @@ impl Writer {
                     *lines += 1;
                 }
                 if let Some(id) = p.request_id {
-                    self.order.push_back((p.at_ms, id.clone()));
+                    self.order.push_back((at_ms, id.clone()));
                     self.recent.insert(
                         id,
                         Recent {
-                            at_ms: p.at_ms,
+                            at_ms,
                             map: p.map,
                             predicted: p.predicted,
                             confidence: p.confidence,
@@ -614,6 +626,7 @@ mod tests {
             accepted,
             audit,
             logits: vec![0.0, 1.0, 3.0],
+            at: Instant::now(),
         }
     }
 
@@ -670,6 +683,54 @@ mod tests {
             .filter(|r| matches!(r, Record::Outcome { .. }))
             .count();
         assert_eq!((read.records.len(), outcomes, read.torn), (4, 2, 0));
+    }
+
+    #[tokio::test]
+    async fn a_decision_is_journaled_at_the_wall_clock_time_of_its_instant() {
+        let dir = tempfile::tempdir().unwrap();
+        let log = DecisionLog::spawn(JournalOptions {
+            dir: Some(dir.path().to_owned()),
+            ..JournalOptions::default()
+        })
+        .unwrap();
+        const AGO: Duration = Duration::from_secs(30);
+        let before = now_ms();
+        let then = Instant::now()
+            .checked_sub(AGO)
+            .expect("the clock runs 30 s back");
+        log.decision(Decided {
+            at: then,
+            ..decided("old", 0, 0.9, true, false)
+        });
+        log.decision(decided("new", 0, 0.9, true, false));
+        // The outcome is acknowledged after its batch is written, decisions included.
+        log.outcome("new", 0).await.unwrap();
+        let after = now_ms();
+        let at = |id: &str| {
+            read_journal(dir.path())
+                .unwrap()
+                .records
+                .into_iter()
+                .find_map(|r| match r {
+                    Record::Decision {
+                        at_ms, request_id, ..
+                    } if request_id == id => Some(at_ms),
+                    _ => None,
+                })
+                .unwrap()
+        };
+        let ago = AGO.as_millis() as u64;
+        // Milliseconds are truncated on both sides: allow one either way.
+        assert!(
+            (before - 1..=after + 1).contains(&at("new")),
+            "{before} {} {after}",
+            at("new")
+        );
+        assert!(
+            (before - ago - 1..=after - ago + 1).contains(&at("old")),
+            "{before} {} {after}",
+            at("old")
+        );
     }
 
     #[test]

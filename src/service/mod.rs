@@ -212,6 +212,7 @@ fn counted(
                     accepted: resp.decision == crate::proto::v1::Decision::Accept as i32,
                     audit: resp.audit,
                     logits: std::mem::take(&mut req.logits),
+                    at: started,
                 });
             }
             Ok(resp)
