@@ -76,6 +76,17 @@ fn methods(k: usize) -> Vec<(&'static str, Method)> {
     ]
 }
 
+/// Bytes written between two cold rows: four times a 2 MiB per-core L2 cache.
+const COLD_BYTES: usize = 8 << 20;
+
+/// Writes every cache line of `other`, pushing earlier data out of the core's own caches.
+fn evict(other: &mut [u64]) {
+    for line in other.chunks_mut(8) {
+        line[0] = line[0].wrapping_add(1);
+    }
+    black_box(&other[0]);
+}
+
 fn bench_apply(c: &mut Criterion) {
     let mut group = c.benchmark_group("workspace");
     for k in [10usize, 1000] {
@@ -87,6 +98,29 @@ fn bench_apply(c: &mut Criterion) {
                     let q = ws.apply(black_box(&method), InputForm::Logits, k, black_box(z));
                     black_box(q[0])
                 })
+            });
+        }
+    }
+    group.finish();
+
+    // The same rows after the core's caches were filled with other data, as a sidecar at low
+    // load finds them after the kernel's network work between two requests (the tables of a map
+    // and the workspace then come from the shared cache or memory).
+    let mut group = c.benchmark_group("workspace_cold");
+    let mut other = vec![0u64; COLD_BYTES / 8];
+    for k in [10usize, 1000] {
+        let z = logits(k);
+        for (name, method) in methods(k) {
+            let mut ws = Workspace::new();
+            group.bench_with_input(BenchmarkId::new(name, k), &z, |b, z| {
+                b.iter_batched(
+                    || evict(&mut other),
+                    |_| {
+                        let q = ws.apply(black_box(&method), InputForm::Logits, k, black_box(z));
+                        black_box(q[0])
+                    },
+                    BatchSize::PerIteration,
+                )
             });
         }
     }
