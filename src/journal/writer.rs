@@ -15,8 +15,8 @@ use tokio::sync::oneshot;
 const BATCH: usize = 4096;
 /// How often an idle writer forgets expired decisions.
 const IDLE: Duration = Duration::from_millis(200);
-/// How long the writer sleeps when its queue is empty (the most an outcome waits to be taken).
-const POLL: Duration = Duration::from_millis(2);
+/// How long the writer sleeps when its queue is empty by default (see [`JournalOptions::poll`]).
+pub const DEFAULT_POLL: Duration = Duration::from_millis(10);
 
 /// How the decision log behaves.
 #[derive(Debug, Clone)]
@@ -39,6 +39,9 @@ pub struct JournalOptions {
     pub retention: Duration,
     /// Sliding windows of the live quality estimates.
     pub windows: WindowSizes,
+    /// How long the writer sleeps when its queue is empty: the most a decision waits to be
+    /// taken. An outcome or a refresh wakes it at once.
+    pub poll: Duration,
 }
 
 impl Default for JournalOptions {
@@ -53,6 +56,7 @@ impl Default for JournalOptions {
             remember: 1_000_000,
             retention: Duration::from_secs(7 * 24 * 3600),
             windows: WindowSizes::default(),
+            poll: DEFAULT_POLL,
         }
     }
 }
@@ -68,6 +72,8 @@ pub struct JournalStats {
     pub write_errors: AtomicU64,
     /// Outcomes joined to a decision.
     pub outcomes: AtomicU64,
+    /// Times the writer found its queue empty and went to sleep.
+    pub sleeps: AtomicU64,
 }
 
 /// What an accepted outcome joined.
@@ -191,6 +197,8 @@ pub type SpecLookup = Arc<dyn Fn(&str, &str) -> WindowSpec + Send + Sync>;
 pub struct DecisionLog {
     /// SyncSender: bounded, and `try_send` never blocks the request path.
     tx: SyncSender<Entry>,
+    /// The writer thread, woken for outcomes and refreshes (never for decisions).
+    writer: std::thread::Thread,
     stats: Arc<JournalStats>,
     logits: bool,
     live: Arc<ArcSwap<Vec<LiveQuality>>>,
@@ -249,11 +257,14 @@ impl DecisionLog {
             spec,
             live: live.clone(),
         };
-        std::thread::Builder::new()
+        let writer = std::thread::Builder::new()
             .name("candor-journal".into())
-            .spawn(move || w.run())?;
+            .spawn(move || w.run())?
+            .thread()
+            .clone();
         Ok(DecisionLog {
             tx,
+            writer,
             stats,
             logits,
             live,
@@ -270,6 +281,7 @@ impl DecisionLog {
     pub async fn live_now(&self) -> Arc<Vec<LiveQuality>> {
         let (tx, rx) = oneshot::channel();
         if self.tx.try_send(Entry::Refresh(tx)).is_ok() {
+            self.writer.unpark();
             let _ = rx.await;
         }
         self.live()
@@ -320,7 +332,10 @@ impl DecisionLog {
             reply,
         };
         match self.tx.try_send(entry) {
-            Ok(()) => rx.await.map_err(|_| OutcomeError::Stopped)?,
+            Ok(()) => {
+                self.writer.unpark();
+                rx.await.map_err(|_| OutcomeError::Stopped)?
+            }
             Err(TrySendError::Full(_)) => Err(OutcomeError::Busy),
             Err(TrySendError::Disconnected(_)) => Err(OutcomeError::Stopped),
         }
@@ -366,14 +381,19 @@ impl Writer {
         let mut buf = Vec::with_capacity(1 << 16);
         let mut last_forget = Instant::now();
         loop {
-            // Polled, never parked in `recv`: a sender then never has a sleeping receiver to wake,
-            // so handing a record over is a queue write with no system call on the request path
-            // (waking the writer for every request cost about a fifth more latency at 4 clients
-            // on 2 cores, `cargo bench --bench watch_overhead`).
+            // Polled, never parked in `recv`: a decision's sender then never has a sleeping
+            // receiver to wake, so handing a decision over is a queue write with no system call
+            // on the request path (waking the writer for every request cost about a fifth more
+            // latency at 4 clients on 2 cores, `cargo bench --bench watch_overhead`). An outcome
+            // or a refresh, which a caller waits on, unparks it. Each wake costs the core a
+            // context switch both ways and a cold start: polling every 2 ms, the writer took
+            // 1.5 µs of CPU a request at K = 1000 and one client, every 10 ms 0.4 µs (its
+            // /proc schedstat during `cargo bench --bench sidecar_compare`).
             let first = match self.rx.try_recv() {
                 Ok(e) => e,
                 Err(TryRecvError::Empty) => {
-                    std::thread::sleep(POLL);
+                    self.stats.sleeps.fetch_add(1, Ordering::Release);
+                    std::thread::park_timeout(self.options.poll);
                     if last_forget.elapsed() >= IDLE {
                         self.forget_old();
                         last_forget = Instant::now();
@@ -683,6 +703,41 @@ mod tests {
             .filter(|r| matches!(r, Record::Outcome { .. }))
             .count();
         assert_eq!((read.records.len(), outcomes, read.torn), (4, 2, 0));
+    }
+
+    #[tokio::test]
+    async fn an_outcome_and_a_refresh_wake_the_writer_instead_of_waiting_for_its_poll() {
+        let log = DecisionLog::spawn(JournalOptions {
+            poll: Duration::from_secs(3600),
+            ..JournalOptions::default()
+        })
+        .unwrap();
+        // Once the writer has found its queue empty it sleeps for the hour (it checks the
+        // queue no more before it sleeps): only a wake-up gets the outcome joined in time.
+        let sleeps = log.stats().clone();
+        let asleep = |n: u64| {
+            let sleeps = sleeps.clone();
+            async move {
+                while sleeps.sleeps.load(Ordering::Acquire) < n {
+                    tokio::task::yield_now().await;
+                }
+            }
+        };
+        asleep(1).await;
+        log.decision(decided("a", 2, 0.9, true, true));
+        let limit = Duration::from_secs(30);
+        let ack = tokio::time::timeout(limit, log.outcome("a", 2))
+            .await
+            .expect("the outcome woke the writer")
+            .unwrap();
+        assert!(ack.correct);
+        // Asleep again: a refresh wakes it too, and sees the decision.
+        asleep(2).await;
+        log.decision(decided("b", 0, 0.9, true, false));
+        let live = tokio::time::timeout(limit, log.live_now())
+            .await
+            .expect("the refresh woke the writer");
+        assert_eq!(live.iter().map(|q| q.decisions_total).sum::<u64>(), 2);
     }
 
     #[tokio::test]
