@@ -222,8 +222,9 @@ pub fn logit(s: f64, eps: f64) -> f64 {
 /// Index of the largest element; ties go to the smallest index (as numpy.argmax).
 ///
 /// Two branch-free passes (lane maximum, then the first index holding it) rather than one
-/// branchy scan: faster for the K in the thousands a request may carry.
-#[inline]
+/// branchy scan: faster for the K in the thousands a request may carry. Always inlined, so a
+/// caller compiled for wider vectors (`Workspace::argmax_narrowed`) runs it at that width.
+#[inline(always)]
 pub fn argmax(q: &[f64]) -> usize {
     let m = max_lanes(q);
     // Eight at a time: one vector compare and a mask per chunk instead of a branch per value.
