@@ -65,7 +65,7 @@ pub struct Server {
     tail: Arc<Mutex<VecDeque<String>>>,
     /// The first line logged at level ERROR (`candor serve --log-format json`), kept even after
     /// it leaves the tail.
-    first_error: Arc<Mutex<Option<String>>>,
+    first_error: tokio::sync::watch::Receiver<Option<String>>,
 }
 
 impl Drop for Server {
@@ -106,7 +106,7 @@ fn start(
         .spawn()
         .map_err(|e| format!("{name}: cannot start {command:?}: {e}"))?;
     let tail = Arc::new(Mutex::new(VecDeque::new()));
-    let first_error = Arc::new(Mutex::new(None));
+    let (first_error, first_error_rx) = tokio::sync::watch::channel(None);
     let (tx, rx) = mpsc::channel();
     let stderr: Box<dyn Read + Send> = Box::new(child.stderr.take().ok_or("no stderr pipe")?);
     let (watched, other): (Box<dyn Read + Send>, Option<Box<dyn Read + Send>>) = if on_stderr {
@@ -127,8 +127,11 @@ fn start(
                     }
                 }
                 if line.contains(r#""level":"ERROR""#) {
-                    let mut e = first_error.lock().unwrap_or_else(|e| e.into_inner());
-                    e.get_or_insert_with(|| line.clone());
+                    first_error.send_if_modified(|e| {
+                        let first = e.is_none();
+                        e.get_or_insert_with(|| line.clone());
+                        first
+                    });
                 }
                 let mut t = tail.lock().unwrap_or_else(|e| e.into_inner());
                 if t.len() == TAIL_LINES {
@@ -145,7 +148,7 @@ fn start(
         pid,
         child,
         tail,
-        first_error,
+        first_error: first_error_rx,
     };
     match rx.recv_timeout(ANNOUNCE_TIMEOUT) {
         Ok(addr) => {
@@ -238,18 +241,12 @@ pub fn candor(
     }
 }
 
-/// Resolves with the first ERROR line once one has been logged (checked every 100 ms).
-async fn first_logged(first_error: Arc<Mutex<Option<String>>>) -> String {
-    let mut tick = tokio::time::interval(Duration::from_millis(100));
-    loop {
-        tick.tick().await;
-        let seen = first_error
-            .lock()
-            .unwrap_or_else(|e| e.into_inner())
-            .clone();
-        if let Some(line) = seen {
-            return line;
-        }
+/// Resolves with the first ERROR line once one has been logged; never, if the server's output
+/// ends without one.
+async fn first_logged(mut first_error: tokio::sync::watch::Receiver<Option<String>>) -> String {
+    match first_error.wait_for(Option::is_some).await {
+        Ok(line) => line.clone().unwrap_or_default(),
+        Err(_) => std::future::pending().await,
     }
 }
 

@@ -114,6 +114,22 @@ fn response() -> impl Strategy<Value = CalibrateResponse> {
         )
 }
 
+/// `m` encodes to its prost twin's bytes and the length it announces, and reads back to the same
+/// floats, bit for bit (`floats` picks them), and the same bytes.
+fn encodes_like_its_twin<M: Message + Default>(
+    m: &M,
+    twin: &impl Message,
+    floats: fn(&M) -> &[f32],
+) -> Result<(), TestCaseError> {
+    let bytes = m.encode_to_vec();
+    prop_assert_eq!(m.encoded_len(), bytes.len());
+    prop_assert_eq!(&bytes, &twin.encode_to_vec());
+    let back = M::decode(bytes.as_slice()).unwrap();
+    prop_assert_eq!(bits(floats(&back)), bits(floats(m)));
+    prop_assert_eq!(back.encode_to_vec(), bytes);
+    Ok(())
+}
+
 /// A buffer that hands out `bytes` in two chunks split at `at`, as a buffer that received a
 /// message in two reads does.
 fn split(bytes: &[u8], at: usize) -> impl Buf + '_ {
@@ -126,22 +142,12 @@ proptest! {
 
     #[test]
     fn a_request_encodes_to_prosts_bytes_and_reads_back(r in request()) {
-        let bytes = r.encode_to_vec();
-        prop_assert_eq!(r.encoded_len(), bytes.len());
-        prop_assert_eq!(&bytes, &request_twin(&r).encode_to_vec());
-        let back = CalibrateRequest::decode(bytes.as_slice()).unwrap();
-        prop_assert_eq!(bits(&back.logits), bits(&r.logits));
-        prop_assert_eq!(back.encode_to_vec(), bytes);
+        encodes_like_its_twin(&r, &request_twin(&r), |m| &m.logits)?;
     }
 
     #[test]
     fn a_response_encodes_to_prosts_bytes_and_reads_back(r in response()) {
-        let bytes = r.encode_to_vec();
-        prop_assert_eq!(r.encoded_len(), bytes.len());
-        prop_assert_eq!(&bytes, &response_twin(&r).encode_to_vec());
-        let back = CalibrateResponse::decode(bytes.as_slice()).unwrap();
-        prop_assert_eq!(bits(&back.probabilities), bits(&r.probabilities));
-        prop_assert_eq!(back.encode_to_vec(), bytes);
+        encodes_like_its_twin(&r, &response_twin(&r), |m| &m.probabilities)?;
     }
 
     #[test]

@@ -188,6 +188,18 @@ impl Default for Registry {
     }
 }
 
+/// Gives the memory that reading maps freed back to the system (see [`crate::heap`]), logging
+/// how long it took.
+fn release_freed() {
+    let started = std::time::Instant::now();
+    let released = crate::heap::release_freed();
+    tracing::debug!(
+        released,
+        micros = started.elapsed().as_micros() as u64,
+        "gave the memory freed by reading maps back to the system"
+    );
+}
+
 impl Registry {
     /// An empty, not-ready registry with no store on disk (maps arrive by [`Registry::publish`]).
     pub fn new() -> Arc<Self> {
@@ -269,13 +281,7 @@ impl Registry {
             (r.view(), r.files_read() != before)
         };
         if read {
-            let started = std::time::Instant::now();
-            let released = crate::heap::release_freed();
-            tracing::debug!(
-                released,
-                micros = started.elapsed().as_micros() as u64,
-                "gave the memory freed by reading maps back to the system"
-            );
+            release_freed();
         }
         view
     }
@@ -306,7 +312,7 @@ impl Registry {
             }
             out
         };
-        crate::heap::release_freed();
+        release_freed();
         out
     }
 
